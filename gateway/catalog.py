@@ -593,7 +593,7 @@ class Catalog:
                 db.executemany("INSERT INTO shards(ino, idx, shard, version, store_id, state) VALUES(?,?,?,?,?,?)",
                                [(ino, s.idx, sh.shard, s.version, sh.store_id, sh.state) for sh in s.shards])
                 db.execute("DELETE FROM intents WHERE file_id=? AND idx=? AND version=?", (node.file_id, s.idx, s.version))
-                if any(sh.state != "ok" for sh in s.shards):
+                if any(sh.state in ("missing", "corrupt") for sh in s.shards):
                     db.execute("INSERT OR IGNORE INTO repair_queue(ino, idx, reason, queued) VALUES(?,?,?,?)",
                                (ino, s.idx, "written-short", time.time()))
             self._truncate_stripes(db, node, size, stripe_size)

@@ -945,7 +945,9 @@ async def probe_slot(slot: StoreSlot, *, deadline: float | None = None) -> None:
     elif slot.admin == "retiring" and state == "online":
         state = "retiring"
     if state != slot.state:
-        log.warning("store %s: %s -> %s (%s)", slot.path, slot.state, state, reason)
+        first = slot.reason == "not probed yet"
+        log.log(logging.INFO if first and state == "online" else logging.WARNING,
+                "store %s: %s -> %s (%s)", slot.path, slot.state, state, reason)
         slot.state, slot.state_since = state, time.time()
     slot.reason = reason
 

@@ -12,7 +12,7 @@ import sys
 from ..errors import ConfigError, ShoalError
 
 # Modules that add sub-commands, in the order `shoal --help` lists them.
-COMMAND_MODULES = ("pool", "plan")
+COMMAND_MODULES = ("pool", "mount", "plan")
 
 EXIT_ERROR = 1
 EXIT_CONFIG = 2
