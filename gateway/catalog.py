@@ -573,17 +573,20 @@ class Catalog:
             db.execute("DELETE FROM stripes WHERE ino=? AND idx>=?", (node.ino, from_idx))
 
     def commit_file(self, ino: int, *, size: int, mtime_ns: int | None, stripes: Sequence[NewStripe],
-                    stripe_size: int, expect_size: int | None = None) -> Inode:
+                    stripe_size: int, cut: int | None = None) -> Inode:
         """Make new stripe versions current and set the file size, in one durable
-        transaction. Replaced versions and stripes past the new end go to the
-        garbage list; a last stripe reaching past `size` is trimmed in place
-        (bytes past a stripe's length read as zeros). Intents of these stripes
-        are dropped."""
+        transaction. `cut`, if given, is a truncation that happened before the
+        new stripes were written: it applies first. Replaced versions and
+        stripes past the end go to the garbage list; a last stripe reaching
+        past the end is trimmed in place (bytes past a stripe's length read as
+        zeros). Intents of these stripes are dropped."""
         t = now_ns()
         with self._tx() as db:
             node = self.get_inode(ino)
             if not node.is_reg:
                 raise IsADirectory(f"inode {ino} is not a regular file")
+            if cut is not None:
+                self._truncate_stripes(db, node, cut, stripe_size)
             replaced = [s.idx for s in stripes]
             if replaced:
                 self._garbage_stripes(db, node, 0, only=replaced)
@@ -692,6 +695,323 @@ class Catalog:
         """(idx, version, shard) of every current shard of a file."""
         return {tuple(r) for r in self.db.execute(
             "SELECT s.idx, s.version, s.shard FROM shards s JOIN inodes i ON i.ino=s.ino WHERE i.file_id=?", (file_id,))}
+
+    # -- recovery, check and mirrors (gateway.recovery, gateway.mirror) ----------
+    @classmethod
+    def open_read_only(cls, path: Path) -> "Catalog":
+        """A read-only connection (SQLite URI ``mode=ro``): it never writes the
+        database and never migrates, so it is safe beside a running daemon (WAL
+        lets readers and the writer proceed together). SQLite may create the
+        -wal and -shm files next to it. Raises CatalogError if the file is
+        missing, not a catalog or of another schema version."""
+        self = cls.__new__(cls)
+        self.path = Path(path)
+        if not self.path.is_file():
+            raise CatalogError(f"no catalog at {self.path}")
+        try:
+            self.db = sqlite3.connect(self.path.resolve().as_uri() + "?mode=ro", uri=True, isolation_level=None,
+                                      check_same_thread=False, timeout=30)
+        except sqlite3.DatabaseError as e:
+            raise CatalogError(f"catalog {self.path} cannot be opened: {e}") from e
+        try:
+            ver = self.db.execute("PRAGMA user_version").fetchone()[0]
+            if ver != SCHEMA_VERSION:
+                raise CatalogError(f"catalog {self.path} has schema {ver}, this Shoal reads {SCHEMA_VERSION}")
+        except sqlite3.DatabaseError as e:
+            self.db.close()
+            raise CatalogError(f"catalog {self.path} cannot be read: {e}") from e
+        except CatalogError:
+            self.db.close()
+            raise
+        return self
+
+    @staticmethod
+    def inspect(path: Path) -> dict:
+        """Identity of a catalog file, read-only: {"pool_id", "pool_name",
+        "generation", "next_version", "schema"}. Runs SQLite's quick_check.
+        Raises CatalogError saying what is wrong."""
+        c = Catalog.open_read_only(path)
+        try:
+            problems = [r[0] for r in c.db.execute("PRAGMA quick_check").fetchall()]
+            if problems != ["ok"]:
+                raise CatalogError(f"catalog {path} fails SQLite's quick_check: {'; '.join(problems[:3])}")
+            if c.get_meta("pool_id") is None:
+                raise CatalogError(f"catalog {path} is not initialised")
+            return {"pool_id": c.get_meta("pool_id"), "pool_name": c.get_meta("pool_name"),
+                    "generation": int(c.get_meta("generation", 0)), "next_version": int(c.get_meta("next_version", 1)),
+                    "schema": SCHEMA_VERSION}
+        except sqlite3.DatabaseError as e:
+            raise CatalogError(f"catalog {path} cannot be read: {e}") from e
+        finally:
+            c.close()
+
+    def snapshot_to(self, dest: Path) -> tuple[str, int]:
+        """Copy the whole database to dest with SQLite's online backup API (one
+        step, so one consistent read snapshot), in rollback-journal mode, and
+        fsync it. Returns (pool_id, generation) as recorded in the copy itself.
+        Works on a read-only connection."""
+        out = sqlite3.connect(str(dest))
+        try:
+            self.db.backup(out)
+            out.execute("PRAGMA journal_mode=DELETE")
+            meta = dict(out.execute("SELECT key, value FROM meta WHERE key IN ('pool_id', 'generation')").fetchall())
+        finally:
+            out.close()
+        fd = os.open(dest, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        return meta.get("pool_id"), int(meta.get("generation", 0))
+
+    def all_inodes(self) -> list[Inode]:
+        return [_inode(r) for r in self.db.execute(f"SELECT {_INODE_COLS} FROM inodes ORDER BY ino")]
+
+    def all_entries(self) -> list[tuple[int, int, bytes, int]]:
+        """(entry id, parent, name, ino) of every directory entry."""
+        return [(r[0], r[1], bytes(r[2]), r[3]) for r in self.db.execute("SELECT id, parent, name, ino FROM entries ORDER BY id")]
+
+    def all_stripes(self) -> list[tuple[FileId | None, StripeRecord]]:
+        """Every current stripe with its file id (None if the inode is gone)."""
+        shards: dict[tuple[int, int], list[ShardLoc]] = {}
+        for ino, idx, shard, store_id, state in self.db.execute(
+                "SELECT ino, idx, shard, store_id, state FROM shards ORDER BY ino, idx, shard"):
+            shards.setdefault((ino, idx), []).append(ShardLoc(shard=shard, store_id=store_id, state=state))
+        return [(r[0], StripeRecord(ino=r[1], idx=r[2], version=r[3], length=r[4], coded_length=r[5], k=r[6], n=r[7],
+                                    shards=tuple(shards.get((r[1], r[2]), ()))))
+                for r in self.db.execute(
+                    "SELECT i.file_id, s.ino, s.idx, s.version, s.length, s.coded_length, s.k, s.n "
+                    "FROM stripes s LEFT JOIN inodes i ON i.ino=s.ino ORDER BY s.ino, s.idx")]
+
+    def shard_versions(self) -> dict[tuple[int, int], int]:
+        """(ino, idx) -> version of each shard row, where it differs from its stripe's."""
+        return {(r[0], r[1]): r[2] for r in self.db.execute(
+            "SELECT h.ino, h.idx, h.version FROM shards h JOIN stripes s ON s.ino=h.ino AND s.idx=h.idx "
+            "WHERE h.version<>s.version")}
+
+    def repair_queued(self) -> set[tuple[int, int]]:
+        return {(r[0], r[1]) for r in self.db.execute("SELECT ino, idx FROM repair_queue")}
+
+    def restore_stripes(self, ino: int, stripes: Sequence[NewStripe], *, size: int | None = None,
+                        reason: str = "recovered") -> None:
+        """Make these stripe versions current as found on the stores (recovery):
+        no garbage is listed for what they replace. Stripes with shards that are
+        not 'ok' are queued for repair. size, if given, becomes the file size."""
+        t = time.time()
+        with self._tx() as db:
+            for s in stripes:
+                db.execute("DELETE FROM shards WHERE ino=? AND idx=?", (ino, s.idx))
+                db.execute("INSERT OR REPLACE INTO stripes(ino, idx, version, length, coded_length, k, n) VALUES(?,?,?,?,?,?,?)",
+                           (ino, s.idx, s.version, s.length, s.coded_length, s.k, s.n))
+                db.executemany("INSERT INTO shards(ino, idx, shard, version, store_id, state) VALUES(?,?,?,?,?,?)",
+                               [(ino, s.idx, sh.shard, s.version, sh.store_id, sh.state) for sh in s.shards])
+                if any(sh.state != "ok" for sh in s.shards):
+                    db.execute("INSERT OR IGNORE INTO repair_queue(ino, idx, reason, queued) VALUES(?,?,?,?)",
+                               (ino, s.idx, reason, t))
+            if size is not None:
+                db.execute("UPDATE inodes SET size=?, ctime_ns=? WHERE ino=?", (size, now_ns(), ino))
+            self._bump(db)
+
+    def adopt_file(self, parent: int, name: bytes, *, file_id: str, mode: int, uid: int = 0, gid: int = 0,
+                   mtime_ns: int | None = None) -> Inode:
+        """Create a regular file that takes an existing file id (recovery puts
+        files the catalog lost back under lost+found). Raises Exists."""
+        check_name(name)
+        t = now_ns()
+        m = mtime_ns if mtime_ns is not None else t
+        with self._tx() as db:
+            self._require_dir(parent)
+            if db.execute("SELECT 1 FROM entries WHERE parent=? AND name=?", (parent, name)).fetchone():
+                raise Exists(name.decode(errors="replace"))
+            cur = db.execute(
+                "INSERT INTO inodes(mode, uid, gid, size, nlink, atime_ns, mtime_ns, ctime_ns, rdev, file_id, target) "
+                "VALUES(?,?,?,0,1,?,?,?,0,?,NULL)", (stat.S_IFREG | (mode & 0o7777), uid, gid, m, m, t, file_id))
+            ino = cur.lastrowid
+            db.execute("INSERT INTO entries(parent, name, ino) VALUES(?,?,?)", (parent, name, ino))
+            db.execute("UPDATE inodes SET mtime_ns=?, ctime_ns=? WHERE ino=?", (t, t, parent))
+            self._bump(db)
+        return self.get_inode(ino)
+
+    def raise_next_version(self, at_least: int) -> None:
+        """Stripe versions below at_least are taken (found on the stores)."""
+        with self._tx() as db:
+            db.execute("UPDATE meta SET value=MAX(CAST(value AS INTEGER), ?) WHERE key='next_version'", (at_least,))
+
+    def path_of(self, ino: int) -> bytes | None:
+        """The path of an inode from the root (its first entry at each level),
+        or None if it is not reachable."""
+        parts, seen = [], set()
+        while ino != ROOT:
+            if ino in seen:
+                return None
+            seen.add(ino)
+            row = self.db.execute("SELECT parent, name FROM entries WHERE ino=? ORDER BY id LIMIT 1", (ino,)).fetchone()
+            if row is None:
+                return None
+            parts.append(bytes(row[1]))
+            ino = row[0]
+        return b"/" + b"/".join(reversed(parts))
+
+    def drop_entries(self, ids: Iterable[int]) -> None:
+        with self._tx() as db:
+            db.executemany("DELETE FROM entries WHERE id=?", [(i,) for i in ids])
+            self._bump(db)
+
+    def reattach(self, ino: int, parent: int, name: bytes) -> None:
+        """Replace every entry of ino by one entry parent/name (check --repair
+        moves unreachable inodes into lost+found). nlink is the caller's."""
+        check_name(name)
+        with self._tx() as db:
+            self._require_dir(parent)
+            if db.execute("SELECT 1 FROM entries WHERE parent=? AND name=?", (parent, name)).fetchone():
+                raise Exists(name.decode(errors="replace"))
+            db.execute("DELETE FROM entries WHERE ino=?", (ino,))
+            db.execute("INSERT INTO entries(parent, name, ino) VALUES(?,?,?)", (parent, name, ino))
+            self._bump(db)
+
+    def set_nlinks(self, items: Iterable[tuple[int, int]]) -> None:
+        """(ino, nlink) pairs."""
+        with self._tx() as db:
+            db.executemany("UPDATE inodes SET nlink=? WHERE ino=?", [(n, i) for i, n in items])
+            self._bump(db)
+
+    def give_file_id(self, ino: int) -> str | None:
+        """A fresh file id for a regular file that has none and no stripes."""
+        with self._tx() as db:
+            node = self.get_inode(ino)
+            if not node.is_reg or node.file_id is not None or \
+                    db.execute("SELECT 1 FROM stripes WHERE ino=? LIMIT 1", (ino,)).fetchone():
+                return None
+            fid = uuid.uuid4().hex
+            db.execute("UPDATE inodes SET file_id=? WHERE ino=?", (fid, ino))
+            self._bump(db)
+        return fid
+
+    # -- repair, scrub and store lifecycle (gateway.repair, gateway.scrub, gateway.lifecycle)
+    def repair_batch(self, usable: Sequence[str], limit: int = 1000) -> list[tuple[int, int, str, int | None]]:
+        """Queued stripes, lowest margin first: (ino, idx, reason, margin), where
+        margin is the shards 'ok' on the usable stores minus k, and None when
+        the stripe no longer exists (the caller dequeues it). Ties: longest
+        queued first."""
+        usable = list(usable)
+        marks = ",".join("?" * len(usable)) or "NULL"
+        rows = self.db.execute(
+            "SELECT q.ino, q.idx, q.reason, s.k, "
+            f"(SELECT COUNT(*) FROM shards h WHERE h.ino=q.ino AND h.idx=q.idx AND h.state='ok' AND h.store_id IN ({marks})) AS valid "
+            "FROM repair_queue q LEFT JOIN stripes s ON s.ino=q.ino AND s.idx=q.idx "
+            "ORDER BY s.k IS NOT NULL, valid - COALESCE(s.k, 0), q.queued LIMIT ?", (*usable, limit)).fetchall()
+        return [(r[0], r[1], r[2], None if r[3] is None else r[4] - r[3]) for r in rows]
+
+    def queue_store_stripes(self, store_id: str, reason: str, states: Sequence[str] = SHARD_STATES) -> int:
+        """Queue every stripe with a shard on store_id in one of `states`;
+        returns how many were not queued already."""
+        marks = ",".join("?" * len(states))
+        with self._tx() as db:
+            cur = db.execute("INSERT OR IGNORE INTO repair_queue(ino, idx, reason, queued) "
+                             f"SELECT DISTINCT ino, idx, ?, ? FROM shards WHERE store_id=? AND state IN ({marks})",
+                             (reason, time.time(), store_id, *states))
+            return cur.rowcount
+
+    def queue_unplaced(self, reason: str = "unplaced") -> int:
+        """Queue every stripe with a shard that has no store (written short)."""
+        with self._tx() as db:
+            cur = db.execute("INSERT OR IGNORE INTO repair_queue(ino, idx, reason, queued) "
+                             "SELECT DISTINCT ino, idx, ?, ? FROM shards WHERE store_id IS NULL", (reason, time.time()))
+            return cur.rowcount
+
+    def record_repair(self, ino: int, idx: int, version: int, file_id: str,
+                      moves: Sequence[tuple[int, str, str | None]]) -> int:
+        """Point regenerated shards at the stores that now hold them: (shard,
+        store_id, old store_id whose copy becomes garbage, or None). Applied
+        only while the stripe's version is still `version`; a regenerated
+        shard of a version replaced meanwhile goes to the garbage list
+        instead. Returns the number applied."""
+        t = time.time()
+        applied = 0
+        with self._tx() as db:
+            for shard, store_id, old in moves:
+                cur = db.execute("UPDATE shards SET store_id=?, state='ok' WHERE ino=? AND idx=? AND shard=? AND version=?",
+                                 (store_id, ino, idx, shard, version))
+                if cur.rowcount:
+                    applied += 1
+                    dead = old if old is not None and old != store_id else None
+                else:
+                    dead = store_id
+                if dead is not None:
+                    db.execute("INSERT INTO garbage(store_id, file_id, idx, version, shard, since) VALUES(?,?,?,?,?,?)",
+                               (dead, file_id, idx, version, shard, t))
+        return applied
+
+    def stripe_page(self, after: tuple[int, int], limit: int) -> list[tuple[FileId | None, StripeRecord]]:
+        """Up to `limit` current stripes after (ino, idx), in (ino, idx) order,
+        with their file ids, read in one snapshot (for scans)."""
+        self.db.execute("BEGIN")
+        try:
+            rows = self.db.execute(
+                "SELECT i.file_id, s.ino, s.idx, s.version, s.length, s.coded_length, s.k, s.n FROM stripes s "
+                "LEFT JOIN inodes i ON i.ino=s.ino WHERE (s.ino, s.idx) > (?, ?) ORDER BY s.ino, s.idx LIMIT ?",
+                (after[0], after[1], limit)).fetchall()
+            shards: dict[tuple[int, int], list[ShardLoc]] = {}
+            if rows:
+                last = (rows[-1][1], rows[-1][2])
+                for ino, idx, shard, store_id, state in self.db.execute(
+                        "SELECT ino, idx, shard, store_id, state FROM shards WHERE (ino, idx) > (?, ?) AND (ino, idx) <= (?, ?) "
+                        "ORDER BY ino, idx, shard", (after[0], after[1], last[0], last[1])):
+                    shards.setdefault((ino, idx), []).append(ShardLoc(shard=shard, store_id=store_id, state=state))
+        finally:
+            self.db.execute("COMMIT")
+        return [(r[0], StripeRecord(ino=r[1], idx=r[2], version=r[3], length=r[4], coded_length=r[5], k=r[6], n=r[7],
+                                    shards=tuple(shards.get((r[1], r[2]), ())))) for r in rows]
+
+    def known_shards(self, store_id: str, file_ids: Sequence[str]) -> tuple[set[tuple[str, int, int, int]], set[tuple[str, int, int]]]:
+        """For an orphan scan of one store, read in one snapshot: (file_id, idx,
+        version, shard) of every shard of these files that the catalog places
+        on the store or lists as garbage there, and (file_id, idx, version) of
+        every write intent of these files (its shards may be on any store)."""
+        fids = list(file_ids)
+        placed: set[tuple[str, int, int, int]] = set()
+        intents: set[tuple[str, int, int]] = set()
+        self.db.execute("BEGIN")
+        try:
+            for i in range(0, len(fids), 500):
+                part = fids[i:i + 500]
+                marks = ",".join("?" * len(part))
+                placed.update(tuple(r) for r in self.db.execute(
+                    "SELECT i.file_id, h.idx, h.version, h.shard FROM shards h JOIN inodes i ON i.ino=h.ino "
+                    f"WHERE h.store_id=? AND i.file_id IN ({marks})", (store_id, *part)))
+                placed.update(tuple(r) for r in self.db.execute(
+                    f"SELECT file_id, idx, version, shard FROM garbage WHERE store_id=? AND file_id IN ({marks})",
+                    (store_id, *part)))
+                intents.update(tuple(r) for r in self.db.execute(
+                    f"SELECT file_id, idx, version FROM intents WHERE file_id IN ({marks})", part))
+        finally:
+            self.db.execute("COMMIT")
+        return placed, intents
+
+    def replace_store_record(self, old_id: str, new_id: str, *, path: str, old_path: str) -> int:
+        """A new store takes over from old_id at `path`, in one transaction: the
+        old record moves to `old_path` and is marked failed; the new one gets
+        the old domain and replaces=old_id; the old store's shard rows point at
+        the new store with state 'missing' and their stripes are queued for
+        repair; garbage listed on the old store is forgotten (it went with the
+        old disk). Returns the number of shard rows re-pointed."""
+        t = time.time()
+        with self._tx() as db:
+            row = db.execute("SELECT domain FROM stores WHERE store_id=?", (old_id,)).fetchone()
+            if row is None:
+                raise CatalogError(f"store {old_id} is not in the catalog")
+            db.execute("UPDATE stores SET path=?, admin='failed' WHERE store_id=?", (old_path, old_id))
+            db.execute("INSERT INTO stores(store_id, path, domain, replaces, added) VALUES(?,?,?,?,?)",
+                       (new_id, path, row[0], old_id, t))
+            moved = db.execute("UPDATE shards SET store_id=?, state='missing' WHERE store_id=?", (new_id, old_id)).rowcount
+            db.execute("INSERT OR IGNORE INTO repair_queue(ino, idx, reason, queued) "
+                       "SELECT DISTINCT ino, idx, 'store-replaced', ? FROM shards WHERE store_id=?", (t, new_id))
+            db.execute("DELETE FROM garbage WHERE store_id=?", (old_id,))
+            self._bump(db)
+        return moved
+
+    def store_shard_count(self, store_id: str) -> int:
+        return self.db.execute("SELECT COUNT(*) FROM shards WHERE store_id=?", (store_id,)).fetchone()[0]
 
     def checkpoint(self) -> None:
         self.db.execute("PRAGMA wal_checkpoint(TRUNCATE)")

@@ -225,11 +225,6 @@ def from_dict(data: dict, *, source: Path) -> PoolConfig:
     base = source.resolve().parent
     top = _Reader(sp, data, "")
     pool_t = top.get("pool", (dict,), fix="add a [pool] table with name, k, n and state_dir")
-    stores_t = top.get("store", (list,), fix="add one [[store]] table per store, each with a path")
-    sections = {}
-    for name in ("store_io", "repair", "scrub", "metrics", "catalog"):
-        sections[name] = _Reader(sp, top.get(name, (dict,), {}), name)
-    top.finish()
 
     pr = _Reader(sp, pool_t, "pool")
     name = pr.get("name", (str,), fix='name the pool, e.g. name = "lab"')
@@ -255,6 +250,12 @@ def from_dict(data: dict, *, source: Path) -> PoolConfig:
         raise pr.err("memory_cap", f"is {mem} bytes, less than two stripes ({2 * stripe})", "raise memory_cap or lower stripe_size")
     allow_other = pr.get("allow_other", (bool,), False)
     pr.finish()
+
+    stores_t = top.get("store", (list,), fix="add one [[store]] table per store, each with a path")
+    sections = {}
+    for name in ("store_io", "repair", "scrub", "metrics", "catalog"):
+        sections[name] = _Reader(sp, top.get(name, (dict,), {}), name)
+    top.finish()
 
     stores: list[StoreConfig] = []
     for i, t in enumerate(stores_t):

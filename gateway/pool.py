@@ -156,11 +156,19 @@ class OpenFile:
     records: dict[int, cat.StripeRecord | None] = field(default_factory=dict)
     error: ShoalError | None = None
     unlinked: bool = False
+    cut: int | None = None  # truncated to this size since the last commit (committed bytes past it are gone)
     lock: trio.Lock = field(default_factory=trio.Lock)
 
     @property
     def changed(self) -> bool:
-        return bool(self.dirty or self.inflight or self.size != self.committed_size or self.mtime_ns is not None)
+        return bool(self.dirty or self.inflight or self.size != self.committed_size or self.mtime_ns is not None
+                    or self.cut is not None)
+
+    def visible(self, idx: int, length: int, stripe_size: int) -> int:
+        """How many bytes of committed stripe idx survive the pending cut."""
+        if self.cut is None:
+            return length
+        return max(0, min(length, self.cut - idx * stripe_size))
 
 
 @dataclass(eq=False)
@@ -355,8 +363,11 @@ class Pool:
         return node.target
 
     async def setattr(self, ino: int, *, size: int | None = None, **fields) -> Inode:
-        """chmod, chown, utimens and truncate. A truncate of an open file first
-        commits its pending writes, so the cut applies to settled content."""
+        """chmod, chown, utimens and truncate. A truncate of an open file (this is
+        how O_TRUNC arrives) first commits pending writes, then cuts in memory:
+        the cut becomes durable with the file's next commit, in the same
+        transaction as the data written after it. So a failed commit leaves
+        the content from before the truncation, and nothing is lost."""
         if fields or size is not None:
             self._writable()
         if size is not None:
@@ -369,15 +380,15 @@ class Pool:
             if of is not None:
                 async with of.lock:
                     await self._commit_locked(of)
-                    node = await self.db(self.catalog.commit_file, ino, size=size, mtime_ns=cat.now_ns(),
-                                         stripes=(), stripe_size=self.stripe_size)
-                    of.size = of.committed_size = size
-                    of.records.clear()
+                    if size < of.size:
+                        of.cut = size if of.cut is None else min(of.cut, size)
+                    of.size = size
+                    of.mtime_ns = cat.now_ns()
             else:
                 node = await self.db(self.catalog.commit_file, ino, size=size, mtime_ns=cat.now_ns(),
                                      stripes=(), stripe_size=self.stripe_size)
-            self.cache.drop_file(node.file_id)
-            self._gc_wake.set()
+                self.cache.drop_file(node.file_id)
+                self._gc_wake.set()
         if fields:
             of = self.open_files.get(Ino(ino))
             if of is not None and "mtime_ns" in fields:
@@ -509,9 +520,10 @@ class Pool:
         if infl is not None:
             return (infl.data if infl.data is not None else infl.ref(of.file_id)), infl.length
         rec = await self._record(of, idx)
-        if rec is None:
+        length = of.visible(idx, rec.length, self.stripe_size) if rec is not None else 0
+        if length == 0:
             return None, 0
-        return self._ref(of.file_id, rec), rec.length
+        return self._ref(of.file_id, rec), length
 
     async def _new_dirty(self, of: OpenFile, idx: int) -> DirtyStripe:
         S = self.stripe_size
@@ -526,7 +538,7 @@ class Pool:
         if idx in of.dirty:  # another writer made it while we waited
             return of.dirty[idx]
         self.budget.take(S)
-        ds = DirtyStripe(idx, base, min(blen, max(0, of.committed_size - idx * S)) if base is not None else 0)
+        ds = DirtyStripe(idx, base, blen if base is not None else 0)
         of.dirty[idx] = ds
         return ds
 
@@ -688,10 +700,10 @@ class Pool:
                          shards=tuple(ShardLoc(shard=s, store_id=sid, state=st if st != "pending" else "pending")
                                       for s, (sid, st) in enumerate(zip(i.placement, i.states))))
                for i in batch.values()]
-        size, mtime = of.size, of.mtime_ns
+        size, mtime, cut = of.size, of.mtime_ns, of.cut
         try:
             await self.db(self.catalog.commit_file, of.ino, size=size, mtime_ns=mtime, stripes=new,
-                          stripe_size=self.stripe_size)
+                          stripe_size=self.stripe_size, cut=cut)
         except BaseException:
             for infl in batch.values():
                 infl.committing = False
@@ -707,6 +719,10 @@ class Pool:
         of.committed_size = size
         if of.mtime_ns == mtime:
             of.mtime_ns = None
+        if cut is not None:
+            of.cut = None
+            of.records.clear()
+            self.cache.drop_file(of.file_id)
         if batch:
             self._gc_wake.set()
 
@@ -716,6 +732,7 @@ class Pool:
         node = await self.db(self.catalog.get_inode, of.ino)
         of.size = of.committed_size = node.size
         of.mtime_ns = None
+        of.cut = None
         of.records.clear()
 
     # -- read path ------------------------------------------------------------
@@ -769,8 +786,10 @@ class Pool:
                 return infl.data
             return await self._read_ref(infl.ref(of.file_id))
         rec = await self._record(of, idx)
-        if rec is None:
+        if rec is None or of.visible(idx, rec.length, S) == 0:
             return b""
+        if of.cut is not None:
+            return (await self._read_ref(self._ref(of.file_id, rec)))[:of.visible(idx, rec.length, S)]
         try:
             return await self._read_ref(self._ref(of.file_id, rec))
         except StripeLost:
