@@ -46,8 +46,8 @@ MIGRATIONS: tuple[str, ...] = (
         store_id TEXT PRIMARY KEY, path TEXT NOT NULL UNIQUE, domain TEXT NOT NULL,
         admin TEXT NOT NULL DEFAULT 'active',      -- active | retiring | retired | failed
         replaces TEXT, added REAL NOT NULL, away_since REAL);
-    CREATE TABLE inodes(
-        ino INTEGER PRIMARY KEY, mode INTEGER NOT NULL, uid INTEGER NOT NULL, gid INTEGER NOT NULL,
+    CREATE TABLE inodes(  -- AUTOINCREMENT: an inode number is never reused (the kernel and caches key on it)
+        ino INTEGER PRIMARY KEY AUTOINCREMENT, mode INTEGER NOT NULL, uid INTEGER NOT NULL, gid INTEGER NOT NULL,
         size INTEGER NOT NULL DEFAULT 0, nlink INTEGER NOT NULL,
         atime_ns INTEGER NOT NULL, mtime_ns INTEGER NOT NULL, ctime_ns INTEGER NOT NULL,
         rdev INTEGER NOT NULL DEFAULT 0, file_id TEXT UNIQUE, target BLOB);
@@ -499,6 +499,11 @@ class Catalog:
             db.execute("UPDATE inodes SET ctime_ns=? WHERE ino=?", (now_ns(), ino))
             self._bump(db)
 
+    def xattrs_of(self, ino: int) -> dict[bytes, bytes]:
+        """Every extended attribute of an inode (raises NotFound for no inode)."""
+        self.get_inode(ino)
+        return {bytes(n): bytes(v) for n, v in self.db.execute("SELECT name, value FROM xattrs WHERE ino=?", (ino,))}
+
     def listxattr(self, ino: int) -> list[bytes]:
         self.get_inode(ino)
         return [bytes(r[0]) for r in self.db.execute("SELECT name FROM xattrs WHERE ino=? ORDER BY name", (ino,))]
@@ -783,12 +788,6 @@ class Catalog:
                     "SELECT i.file_id, s.ino, s.idx, s.version, s.length, s.coded_length, s.k, s.n "
                     "FROM stripes s LEFT JOIN inodes i ON i.ino=s.ino ORDER BY s.ino, s.idx")]
 
-    def shard_versions(self) -> dict[tuple[int, int], int]:
-        """(ino, idx) -> version of each shard row, where it differs from its stripe's."""
-        return {(r[0], r[1]): r[2] for r in self.db.execute(
-            "SELECT h.ino, h.idx, h.version FROM shards h JOIN stripes s ON s.ino=h.ino AND s.idx=h.idx "
-            "WHERE h.version<>s.version")}
-
     def repair_queued(self) -> set[tuple[int, int]]:
         return {(r[0], r[1]) for r in self.db.execute("SELECT ino, idx FROM repair_queue")}
 
@@ -1009,6 +1008,13 @@ class Catalog:
             db.execute("DELETE FROM garbage WHERE store_id=?", (old_id,))
             self._bump(db)
         return moved
+
+    def last_commit_time(self) -> float:
+        """Unix time of the newest inode change: every commit sets the file's
+        ctime, so a shard file newer than this may belong to a commit this
+        catalog has not seen (one restored from an older mirror, say)."""
+        row = self.db.execute("SELECT MAX(ctime_ns) FROM inodes").fetchone()
+        return (row[0] or 0) / 1e9
 
     def store_shard_count(self, store_id: str) -> int:
         return self.db.execute("SELECT COUNT(*) FROM shards WHERE store_id=?", (store_id,)).fetchone()[0]

@@ -40,7 +40,7 @@ from . import catalog as cat
 from .catalog import Catalog, Inode, NewStripe, ShardLoc
 from .config import PoolConfig, spread_cap
 from .errors import (
-    CatalogError, InvalidArgument, IsADirectory, NotFound, PoolUnavailable, QuorumError, ReadOnly,
+    CatalogError, InvalidArgument, IsADirectory, NoAttribute, NotFound, PoolUnavailable, QuorumError, ReadOnly,
     ShoalError, StoreError, StripeLost,
 )
 from .ids import FileId, Ino, PoolId, StoreId
@@ -53,6 +53,14 @@ log = logging.getLogger(__name__)
 
 VERSION_BLOCK = 1024  # stripe versions reserved per durable catalog write
 GC_INTERVAL = 2.0
+GC_BATCH = 128  # shard deletions per worker-thread call
+
+
+def pad(data: bytes, length: int) -> bytes:
+    """data cut or zero-filled to exactly length bytes."""
+    if len(data) < length:
+        return data + bytes(length - len(data))
+    return data[:length] if len(data) > length else data
 
 
 class ByteBudget:
@@ -83,19 +91,50 @@ class DirtyStripe:
 
     def __init__(self, idx: int, base: StripeRef | bytes | None, base_length: int):
         self.idx = idx
-        self.buf = bytearray()
+        # Sequential writes from offset 0 keep the caller's buffers as they
+        # are (no copy on the trio loop); the join happens in the encoding
+        # thread. Any other write pattern switches to one bytearray.
+        self.chunks: list[memoryview] | None = []
+        self.clen = 0
+        self._buf = bytearray()
         self.spans: list[list[int]] = []  # merged [start, end) ranges written
         self.base = base  # previous content, fetched only if needed
         self.base_length = base_length
         self.touched = time.monotonic()
 
+    @property
+    def buf(self) -> bytearray:
+        """The written bytes as one bytearray (leaves chunk mode)."""
+        if self.chunks is not None:
+            self._buf = bytearray(b"".join(self.chunks))
+            self.chunks = None
+        return self._buf
+
+    @buf.setter
+    def buf(self, value: bytearray) -> None:
+        self.chunks = None
+        self._buf = value
+
     def write(self, off: int, data: memoryview) -> None:
+        """Take data at off. `data` must not change afterwards (pyfuse3 hands
+        over immutable bytes)."""
         end = off + len(data)
-        if len(self.buf) < end:
-            self.buf.extend(bytes(end - len(self.buf)))
-        self.buf[off:end] = data
+        if self.chunks is not None and off == self.clen:
+            self.chunks.append(data)
+            self.clen = end
+        else:
+            buf = self.buf
+            if off == len(buf):
+                buf += data  # sequential, after a random write: one copy
+            else:
+                if len(buf) < end:
+                    buf.extend(bytes(end - len(buf)))
+                buf[off:end] = data
         self.touched = time.monotonic()
-        spans, merged, placed = self.spans, [], False
+        if len(self.spans) == 1 and self.spans[0][0] <= off <= self.spans[0][1]:
+            self.spans[0][1] = max(self.spans[0][1], end)
+            return
+        spans, merged = self.spans, []
         for a, b in spans:
             if b < off or a > end:
                 merged.append([a, b])
@@ -136,6 +175,14 @@ class Inflight:
     late: list[tuple[int, str]] = field(default_factory=list)
     abandoned: bool = False  # superseded or failed: delete its shards when done
     started: float = field(default_factory=time.monotonic)
+    chunks: list | None = None  # the data, not yet joined (see DirtyStripe)
+
+    def content(self) -> bytes | bytearray | None:
+        """The stripe's bytes while they are still in memory."""
+        if self.data is None and self.chunks is not None:
+            self.data = pad(b"".join(self.chunks), self.length)
+            self.chunks = None
+        return self.data
 
     def ref(self, file_id: FileId) -> StripeRef:
         return StripeRef(ino=None, file_id=file_id, idx=self.idx, version=self.version, length=self.length,
@@ -257,6 +304,7 @@ class Pool:
         self._state_news: list[tuple] = []
         self._garbage_news: list[tuple] = []
         self._fetching: dict[tuple, trio.Event] = {}
+        self._xattr_cache: dict[int, dict[bytes, bytes]] = {}
         self._gc_wake = trio.Event()
         self.bytes_written = 0
         self.quorum_failures = 0
@@ -335,6 +383,7 @@ class Pool:
             of.unlinked = True  # purged at its last release
             return
         await self.db(self.catalog.purge, node.ino)
+        self._xattr_cache.pop(node.ino, None)
         self._gc_wake.set()
 
     async def unlink(self, parent: int, name: bytes) -> None:
@@ -398,18 +447,35 @@ class Pool:
             node = await self.db(self.catalog.set_attrs, ino, **fields)
         return self._live(node if (fields or size is not None) else await self.db(self.catalog.get_inode, ino))
 
+    async def _xattrs(self, ino: int) -> dict[bytes, bytes]:
+        """All extended attributes of an inode, cached. The kernel asks for
+        security.capability before every write, so this must not cost a
+        catalog round trip each time."""
+        cached = self._xattr_cache.get(ino)
+        if cached is None:
+            cached = await self.db(self.catalog.xattrs_of, ino)
+            if len(self._xattr_cache) >= 10_000:
+                self._xattr_cache.pop(next(iter(self._xattr_cache)))
+            self._xattr_cache[ino] = cached
+        return cached
+
     async def getxattr(self, ino: int, name: bytes) -> bytes:
-        return await self.db(self.catalog.getxattr, ino, name)
+        value = (await self._xattrs(ino)).get(name)
+        if value is None:
+            raise NoAttribute(name.decode(errors="replace"))
+        return value
 
     async def setxattr(self, ino: int, name: bytes, value: bytes, *, create: bool = False, replace: bool = False) -> None:
         self._writable()
+        self._xattr_cache.pop(ino, None)
         await self.db(self.catalog.setxattr, ino, name, value, create=create, replace=replace)
 
     async def listxattr(self, ino: int) -> list[bytes]:
-        return await self.db(self.catalog.listxattr, ino)
+        return sorted(await self._xattrs(ino))
 
     async def removexattr(self, ino: int, name: bytes) -> None:
         self._writable()
+        self._xattr_cache.pop(ino, None)
         await self.db(self.catalog.removexattr, ino, name)
 
     def statfs(self) -> StatFs:
@@ -495,7 +561,7 @@ class Pool:
             raise of.error
         if h.append:
             offset = of.size
-        mv = memoryview(data)
+        mv = memoryview(data if isinstance(data, bytes) else bytes(data))
         total = len(mv)
         pos, S = offset, self.stripe_size
         while mv:
@@ -518,7 +584,8 @@ class Pool:
         """Where the previous content of stripe idx comes from, and its length."""
         infl = of.inflight.get(idx)
         if infl is not None:
-            return (infl.data if infl.data is not None else infl.ref(of.file_id)), infl.length
+            data = infl.content()
+            return (data if data is not None else infl.ref(of.file_id)), infl.length
         rec = await self._record(of, idx)
         length = of.visible(idx, rec.length, self.stripe_size) if rec is not None else 0
         if length == 0:
@@ -550,9 +617,15 @@ class Pool:
                     best = (of, ds)
         return best
 
-    async def _materialize(self, of: OpenFile, ds: DirtyStripe, length: int) -> bytes:
-        """The stripe's full content: previous content under the written spans."""
-        if ds.base is None or ds.base_length == 0 or ds.covers(0, min(length, ds.base_length)):
+    def _self_contained(self, ds: DirtyStripe, length: int) -> bool:
+        """No previous content shows through the written spans."""
+        return ds.base is None or ds.base_length == 0 or ds.covers(0, min(length, ds.base_length))
+
+    async def _materialize(self, of: OpenFile, ds: DirtyStripe, length: int) -> bytearray:
+        """The stripe's full content, exactly `length` bytes: previous content
+        under the written spans. Returns the dirty buffer itself (no copy):
+        a dispatched stripe owns it from then on."""
+        if self._self_contained(ds, length):
             out = ds.buf
         else:
             base = ds.base if isinstance(ds.base, (bytes, bytearray)) else await self._read_ref(ds.base)
@@ -564,7 +637,9 @@ class Pool:
             ds.buf, ds.spans, ds.base = out, [[0, len(out)]], None
         if len(out) < length:
             out.extend(bytes(length - len(out)))
-        return bytes(out[:length])
+        elif len(out) > length:
+            del out[length:]
+        return out
 
     async def _dispatch(self, of: OpenFile, ds: DirtyStripe) -> Inflight:
         """Encode and send one dirty stripe; returns once its puts are started."""
@@ -576,7 +651,10 @@ class Pool:
             self.budget.give(S)
             return None  # truncated away
         try:
-            data = await self._materialize(of, ds, length)
+            if ds.chunks is not None and self._self_contained(ds, length):
+                data = None  # joined in the encoding thread
+            else:
+                data = await self._materialize(of, ds, length)
             version = await self._next_version()
             chosen = self.placement(of.file_id, ds.idx)
         except BaseException:
@@ -584,7 +662,8 @@ class Pool:
             raise
         placement: list[StoreId | None] = list(chosen) + [None] * (self.n - len(chosen))
         infl = Inflight(idx=ds.idx, version=version, length=length, k=self.k, n=self.n, placement=placement,
-                        data=data, states=["pending" if s else "missing" for s in placement])
+                        data=data, states=["pending" if s else "missing" for s in placement],
+                        chunks=ds.chunks if data is None else None)
         old = of.inflight.get(ds.idx)
         if old is not None:
             old.abandoned = True
@@ -595,19 +674,37 @@ class Pool:
             infl.errors.append(f"only {len(chosen)} stores can take shards, w = {self.w}")
             infl.quorum.set()
             infl.done.set()
-            infl.data = None
+            infl.data = infl.chunks = None
             self.budget.give(S)
             return infl
-        await self.db(self.catalog.add_intents, of.file_id, [(ds.idx, version, ",".join(chosen))])
         self.nursery.start_soon(self._write_stripe, of, infl)
         return infl
 
     async def _write_stripe(self, of: OpenFile, infl: Inflight) -> None:
+        """Record the write intent and encode (side by side, off the write()
+        path), then put the shards. The intent lands before any shard, so a
+        crash leaves no shard that start-up clean-up cannot find."""
+        files: list = []
+
+        async def encode() -> None:
+            if infl.data is None and infl.chunks is not None:
+                chunks, length = infl.chunks, infl.length
+                data = await trio.to_thread.run_sync(lambda: pad(b"".join(chunks), length))
+                if infl.chunks is chunks:  # nobody joined them meanwhile
+                    infl.data, infl.chunks = data, None
+            files.extend(await self.io.encode(infl.content(), file_id=of.file_id, idx=infl.idx,
+                                              version=infl.version, k=infl.k, n=infl.n))
+
+        async def intent() -> None:
+            placed = ",".join(s for s in infl.placement if s is not None)
+            await self.db(self.catalog.add_intents, of.file_id, [(infl.idx, infl.version, placed)])
+
         try:
             try:
-                files = await self.io.encode(infl.data, file_id=of.file_id, idx=infl.idx, version=infl.version,
-                                             k=infl.k, n=infl.n)
-            except Exception as e:  # a coding failure is a bug, but it must not kill the pool
+                async with trio.open_nursery() as nursery:
+                    nursery.start_soon(encode)
+                    nursery.start_soon(intent)
+            except Exception as e:  # a coding or catalog failure is a bug, but it must not kill the pool
                 log.exception("encoding stripe %s/%d failed", of.file_id, infl.idx)
                 infl.errors.append(f"encode: {e}")
                 infl.quorum.set()
@@ -617,7 +714,7 @@ class Pool:
                     if sid is not None:
                         nursery.start_soon(self._put_one, of, infl, i, sid, files[i])
         finally:
-            infl.data = None
+            infl.data = infl.chunks = None
             self.budget.give(self.stripe_size)
             infl.quorum.set()
             infl.done.set()
@@ -777,13 +874,14 @@ class Pool:
         ds = of.dirty.get(idx)
         if ds is not None:
             length = min(S, of.size - idx * S)
-            if ds.base is None or ds.base_length == 0 or ds.covers(0, min(length, ds.base_length)):
-                return ds.buf
-            return await self._materialize(of, ds, length)
+            if self._self_contained(ds, length):
+                return bytes(ds.buf)
+            return bytes(await self._materialize(of, ds, length))
         infl = of.inflight.get(idx)
         if infl is not None:
-            if infl.data is not None:
-                return infl.data
+            data = infl.content()
+            if data is not None:
+                return data
             return await self._read_ref(infl.ref(of.file_id))
         rec = await self._record(of, idx)
         if rec is None or of.visible(idx, rec.length, S) == 0:
@@ -815,7 +913,8 @@ class Pool:
             idx, within = divmod(pos, S)
             take = min(end - pos, S - within)
             data = await self._stripe_bytes(of, idx)
-            chunk = data[within:within + take]
+            # Slices of immutable stripe bytes are views: no copy until pyfuse3's.
+            chunk = memoryview(data)[within:within + take] if isinstance(data, bytes) else data[within:within + take]
             if len(chunk) < take:
                 chunk = bytes(chunk) + bytes(take - len(chunk))
             parts.append(chunk)
@@ -823,7 +922,7 @@ class Pool:
         if offset == h.next_offset or offset == 0:
             self._prefetch(of, (end - 1) // S + 1)
         h.next_offset = end
-        return parts[0] if len(parts) == 1 and isinstance(parts[0], bytes) else b"".join(parts)
+        return parts[0] if len(parts) == 1 else b"".join(parts)
 
     def _prefetch(self, of: OpenFile, idx: int) -> None:
         """Sequential reader: fetch the next stripe in the background."""
@@ -869,24 +968,30 @@ class Pool:
             await self.db(self.catalog.drop_intents, [(f, i, v) for _, f, i, v, _ in garbage])
 
     async def collect_garbage(self) -> int:
-        """Delete shards on the garbage list from stores that can be reached."""
-        items = await self.db(self.catalog.garbage, 2000)
+        """Delete shards on the garbage list from stores that can be reached,
+        in batches per store (one worker-thread call per batch)."""
+        items = await self.db(self.catalog.garbage, 4096)
         done: list[int] = []
+        by_store: dict[str, list[cat.Garbage]] = {}
+        for g in items:
+            by_store.setdefault(g.store_id, []).append(g)
 
-        async def one(g: cat.Garbage) -> None:
-            slot = self.slots.get(g.store_id)
-            if slot is None or not slot.readable:
-                return
-            try:
-                await slot.store.delete(ShardName(file_id=g.file_id, stripe_index=g.idx, version=g.version,
-                                                  shard_index=g.shard))
-                done.append(g.id)
-            except StoreError as e:
-                log.debug("garbage shard on %s stays for later: %s", slot.path, e)
+        async def one_store(slot: StoreSlot, batch: list[cat.Garbage]) -> None:
+            for i in range(0, len(batch), GC_BATCH):
+                part = batch[i:i + GC_BATCH]
+                try:
+                    await slot.store.delete_many([ShardName(file_id=g.file_id, stripe_index=g.idx, version=g.version,
+                                                            shard_index=g.shard) for g in part])
+                except StoreError as e:
+                    log.debug("garbage shards on %s stay for later: %s", slot.path, e)
+                    return
+                done.extend(g.id for g in part)
 
         async with trio.open_nursery() as nursery:
-            for g in items:
-                nursery.start_soon(one, g)
+            for sid, batch in by_store.items():
+                slot = self.slots.get(sid)
+                if slot is not None and slot.readable:
+                    nursery.start_soon(one_store, slot, batch)
         if done:
             await self.db(self.catalog.drop_garbage, done)
         return len(done)
