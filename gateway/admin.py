@@ -127,11 +127,31 @@ async def _store_view(cfg: PoolConfig, pool_id: str, rec) -> dict:
         view.update(state="stalled", reason=str(e))
     except StoreError as e:
         view.update(state="offline", reason=str(e))
+    if view["state"] == "online":
+        view["mirror"] = await _newest_mirror(store, pool_id)
     if rec.admin == "failed":
         view["state"] = "failed"
     elif rec.admin == "retiring" and view["state"] == "online":
         view["state"] = "retiring"
     return view
+
+
+async def _newest_mirror(store: Store, pool_id: str) -> dict | None:
+    """Generation and time of the newest catalog mirror on a store, if any."""
+    from .mirror import MirrorMeta, parse_mirror_name
+
+    best = None
+    try:
+        for name, _size, _mtime in await store.list_files():
+            parsed = parse_mirror_name(name)
+            if parsed and parsed[1] == "meta.json" and (best is None or parsed[0] > best[0]):
+                best = (parsed[0], name)
+        if best is None:
+            return None
+        meta = MirrorMeta.from_json(await store.get_file(best[1]))
+    except (StoreError, ValueError):
+        return None
+    return {"generation": meta.generation, "time": meta.time} if meta.pool_id == pool_id else None
 
 
 def survival_report(k: int, n: int, w: int, domains: dict[str, int]) -> list[dict]:
@@ -163,6 +183,8 @@ async def offline_status(cfg: PoolConfig) -> dict:
         queue = await trio.to_thread.run_sync(catalog.repair_queue_length)
     finally:
         await trio.to_thread.run_sync(catalog.close)
+    mirrors = [v.pop("mirror", None) for v in views]
+    newest = max((m for m in mirrors if m), key=lambda m: m["generation"], default=None)
     online = sum(1 for v in views if v["state"] == "online")
     free = sum(v["free_bytes"] for v in views if v["state"] == "online")
     return {
@@ -174,6 +196,10 @@ async def offline_status(cfg: PoolConfig) -> dict:
         "stripes": health,
         "repair": {"queued_stripes": queue, "repaired_bytes": 0, "rate_bytes_per_second": 0.0,
                    "eta_seconds": None, "running": False},
+        "catalog": {"mirror_age_seconds": None if newest is None else max(0.0, time.time() - newest["time"]),
+                    "generation": None if newest is None else newest["generation"],
+                    "stores_with_mirror": sum(1 for m in mirrors if m and newest and m["generation"] == newest["generation"]),
+                    "stores_total": len(views), "last_error": None},
         "domains": survival_report(cfg.k, cfg.n, cfg.write_quorum, cfg.domains),
         "time": time.time(),
     }

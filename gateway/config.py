@@ -253,8 +253,8 @@ def from_dict(data: dict, *, source: Path) -> PoolConfig:
 
     stores_t = top.get("store", (list,), fix="add one [[store]] table per store, each with a path")
     sections = {}
-    for name in ("store_io", "repair", "scrub", "metrics", "catalog"):
-        sections[name] = _Reader(sp, top.get(name, (dict,), {}), name)
+    for section in ("store_io", "repair", "scrub", "metrics", "catalog"):
+        sections[section] = _Reader(sp, top.get(section, (dict,), {}), section)
     top.finish()
 
     stores: list[StoreConfig] = []

@@ -406,13 +406,11 @@ class Daemon:
                     self.notifier.ready()
                     self.notifier.status(self.status_line())
                 self.notifier.stopping()
-                mirror = self.components.get("mirror")
-                if mirror is not None and hasattr(mirror, "final"):
-                    with trio.CancelScope(shield=True):
-                        try:
-                            await mirror.final()
-                        except ShoalError as e:
-                            log.warning("final catalog mirror failed: %s", e)
+            # open_pool has committed what was still open: mirror that final state.
+            mirror = self.components.get("mirror")
+            if mirror is not None:
+                with trio.CancelScope(shield=True):
+                    await mirror.final()
         log.info("pool %s unmounted cleanly", self.cfg.name)
         return 0
 

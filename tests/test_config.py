@@ -22,7 +22,7 @@ BASE = 'name = "lab"\nk = 4\nn = 6\nstate_dir = "state"'
 
 def test_defaults(tmp_path):
     cfg = config.load(write(tmp_path, BASE))
-    assert (cfg.k, cfg.n, cfg.write_quorum) == (4, 6, 5)  # w defaults to min(k+1, n)
+    assert (cfg.name, cfg.k, cfg.n, cfg.write_quorum) == ("lab", 4, 6, 5)  # w defaults to min(k+1, n)
     assert cfg.stripe_size == 4 * 1024 * 1024
     assert cfg.state_dir == (tmp_path / "state").resolve()
     assert [s.path for s in cfg.stores] == [(tmp_path / f"s{i}").resolve() for i in range(6)]

@@ -76,9 +76,16 @@ def format_status(st: dict) -> str:
     m = st.get("catalog") or {}
     if m:
         age = m.get("mirror_age_seconds")
-        lines.append(f"  catalog mirror: {'none yet' if age is None else f'{age:.0f} s old'}")
+        if age is None:
+            text = "none yet"
+        else:
+            text = (f"generation {m.get('generation')} on {m.get('stores_with_mirror')} of "
+                    f"{m.get('stores_total')} stores, {age:.0f} s old")
+        if m.get("last_error"):
+            text += f"; last attempt failed: {m['last_error']}"
+        lines.append(f"  catalog mirror: {text}")
     doms = st.get("domains") or []
-    if doms:
+    if doms and any(s["domain"] == t["domain"] for s in st["stores"] for t in st["stores"] if s is not t):
         one = [d for d in doms if len(d["lost"]) == 1]
         lines.append("  whole-domain losses survived: " + ", ".join(
             f"{'+'.join(d['lost'])} ({'reads' if d['reads'] else 'no reads'}, {'writes' if d['writes'] else 'no writes'})"
