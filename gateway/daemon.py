@@ -61,8 +61,11 @@ class MountPointError(ShoalError):
 
 
 def _is_stale_mount(path: Path) -> bool:
+    """A FUSE mount whose daemon died: listing it fails with ENOTCONN (a
+    plain stat may still answer from the kernel's cache)."""
     try:
         os.stat(path)
+        os.listdir(path)
         return False
     except OSError as e:
         return e.errno == errno.ENOTCONN
