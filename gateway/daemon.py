@@ -42,7 +42,7 @@ HEALTH_COUNT_INTERVAL = 5.0
 
 # (name, module under gateway, class): started when the module is present.
 COMPONENTS = (("health", "health", "HealthMonitor"), ("repair", "repair", "Repairer"),
-              ("scrub", "repair", "Scrubber"), ("mirror", "mirror", "Mirror"))
+              ("scrub", "scrub", "Scrubber"), ("mirror", "mirror", "Mirror"))
 
 
 def _build_default(factory, pool: Pool, cfg: PoolConfig):

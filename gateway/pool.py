@@ -290,7 +290,7 @@ class Pool:
         self.pool_id = PoolId(catalog.pool_id)
         self.stripe_size = int(catalog.get_meta("stripe_size", cfg.stripe_size))
         self.k, self.n, self.w = cfg.k, cfg.n, cfg.write_quorum
-        self.cap = spread_cap(self.n, len({s.domain for s in slots.values()}))
+        self.cap = spread_cap(self.n, len({s.domain for s in slots.values() if s.admin == "active"}) or 1)
         self.forced_read_only = False
         self._db_limiter = trio.CapacityLimiter(1)
         self.io = StripeIO(pool_id=self.pool_id, slots=slots, on_bad_shard=self._bad_shard)
@@ -581,12 +581,14 @@ class Pool:
         return total
 
     async def _base_of(self, of: OpenFile, idx: int) -> tuple[StripeRef | bytes | None, int]:
-        """Where the previous content of stripe idx comes from, and its length."""
+        """Where the previous content of stripe idx comes from, and its length.
+        The in-flight check comes after the catalog wait: a stripe dispatched
+        meanwhile is newer than the catalog's record."""
+        rec = await self._record(of, idx)
         infl = of.inflight.get(idx)
         if infl is not None:
             data = infl.content()
             return (data if data is not None else infl.ref(of.file_id)), infl.length
-        rec = await self._record(of, idx)
         length = of.visible(idx, rec.length, self.stripe_size) if rec is not None else 0
         if length == 0:
             return None, 0
@@ -629,6 +631,9 @@ class Pool:
             out = ds.buf
         else:
             base = ds.base if isinstance(ds.base, (bytes, bytearray)) else await self._read_ref(ds.base)
+            # Writes may have reached the stripe while the base was read: they
+            # are merged below, so take the length again rather than cut them off.
+            length = max(0, min(self.stripe_size, of.size - ds.idx * self.stripe_size))
             out = bytearray(base[:ds.base_length])
             if len(out) < len(ds.buf):
                 out.extend(bytes(len(ds.buf) - len(out)))
@@ -641,25 +646,43 @@ class Pool:
             del out[length:]
         return out
 
-    async def _dispatch(self, of: OpenFile, ds: DirtyStripe) -> Inflight:
-        """Encode and send one dirty stripe; returns once its puts are started."""
+    async def _dispatch(self, of: OpenFile, ds: DirtyStripe) -> Inflight | None:
+        """Encode and send one dirty stripe; returns once its puts are started.
+
+        Every wait (a block of versions, the previous content under a partial
+        stripe) comes first, while the stripe is still dirty and still takes
+        writes. Then, with no checkpoint in between, the stripe leaves
+        of.dirty and its Inflight takes its place, so a concurrent write either
+        lands in it or finds the Inflight as its base: never a gap in which a
+        new dirty stripe starts from older content. Returns None if another
+        task dispatched or dropped the stripe during the waits."""
         S = self.stripe_size
+        try:
+            version = await self._next_version()
+            while of.dirty.get(ds.idx) is ds:
+                length = min(S, of.size - ds.idx * S)
+                if length <= 0 or self._self_contained(ds, length):
+                    break
+                await self._materialize(of, ds, length)  # merges the writes made while the base was read
+        except BaseException as e:
+            if of.dirty.get(ds.idx) is ds:
+                del of.dirty[ds.idx]
+                self.budget.give(S)
+                if isinstance(e, ShoalError) and of.error is None:
+                    of.error = e  # the file's next write or commit reports the lost stripe
+            raise
+        if of.dirty.get(ds.idx) is not ds:
+            return of.inflight.get(ds.idx)
+        del of.dirty[ds.idx]
         length = min(S, of.size - ds.idx * S)
-        if of.dirty.get(ds.idx) is ds:
-            del of.dirty[ds.idx]
         if length <= 0:
             self.budget.give(S)
             return None  # truncated away
-        try:
-            if ds.chunks is not None and self._self_contained(ds, length):
-                data = None  # joined in the encoding thread
-            else:
-                data = await self._materialize(of, ds, length)
-            version = await self._next_version()
-            chosen = self.placement(of.file_id, ds.idx)
-        except BaseException:
-            self.budget.give(S)
-            raise
+        if ds.chunks is not None and self._self_contained(ds, length):
+            data = None  # joined in the encoding thread
+        else:
+            data = await self._materialize(of, ds, length)  # self-contained by now: no checkpoint
+        chosen = self.placement(of.file_id, ds.idx)
         placement: list[StoreId | None] = list(chosen) + [None] * (self.n - len(chosen))
         infl = Inflight(idx=ds.idx, version=version, length=length, k=self.k, n=self.n, placement=placement,
                         data=data, states=["pending" if s else "missing" for s in placement],
@@ -852,8 +875,9 @@ class Pool:
         data = self.cache.get(key)
         if data is not None:
             return data
-        ev = self._fetching.get(key)
-        if ev is not None:
+        # Several readers may have waited for one fetch whose result the cache
+        # did not keep; each looks again, so only one of them fetches anew.
+        while (ev := self._fetching.get(key)) is not None:
             await ev.wait()
             data = self.cache.get(key)
             if data is not None:
@@ -864,7 +888,8 @@ class Pool:
             self.cache.put(key, data)
             return data
         finally:
-            del self._fetching[key]
+            if self._fetching.get(key) is ev:
+                del self._fetching[key]
             ev.set()
 
     async def _stripe_bytes(self, of: OpenFile, idx: int) -> bytes | bytearray:

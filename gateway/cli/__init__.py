@@ -12,7 +12,7 @@ import sys
 from ..errors import ConfigError, ShoalError
 
 # Modules that add sub-commands, in the order `shoal --help` lists them.
-COMMAND_MODULES = ("pool", "mount", "plan")
+COMMAND_MODULES = ("pool", "mount", "plan", "recovery", "heal")
 
 EXIT_ERROR = 1
 EXIT_CONFIG = 2
@@ -33,6 +33,21 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _first_shoal_error(group: BaseExceptionGroup) -> BaseException:
+    """trio nurseries wrap errors in groups; a group of our own errors is
+    reported as its first one. Anything else stays a group (a bug)."""
+    leaves = []
+
+    def walk(g):
+        for e in g.exceptions:
+            walk(e) if isinstance(e, BaseExceptionGroup) else leaves.append(e)
+
+    walk(group)
+    if leaves and all(isinstance(e, (ShoalError, KeyboardInterrupt)) for e in leaves):
+        return leaves[0]
+    return group
+
+
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
@@ -45,7 +60,10 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help(sys.stderr)
         return EXIT_CONFIG
     try:
-        return int(args.func(args) or 0)
+        try:
+            return int(args.func(args) or 0)
+        except BaseExceptionGroup as group:
+            raise _first_shoal_error(group) from None
     except ConfigError as e:
         print(f"shoal: config error: {e}", file=sys.stderr)
         return EXIT_CONFIG
