@@ -6,12 +6,17 @@ shard, the repair queue, the garbage list (shards to delete) and write
 intents (stripes dispatched but not yet committed).
 
 Every method is blocking; callers run them in a worker thread, one at a time
-per Catalog (the pool holds a limiter of one). A commit that acknowledges
-data runs with ``synchronous=FULL`` in WAL mode: SQLite fsyncs the WAL before
-COMMIT returns, so the commit survives a power cut. Write intents are
-recorded with ``synchronous=NORMAL`` (no fsync): they survive a killed
-daemon (the WAL is in the page cache) and cost nothing on the hot path; the
-rare intent lost to a power cut leaves an unknown shard that scrub removes
+per Catalog (the pool holds a limiter of one).
+
+Durability, in WAL mode: a transaction that acknowledges data (a file's
+commit), reserves stripe versions or changes the pool's stores runs with
+``synchronous=FULL``: SQLite fsyncs the WAL before COMMIT returns, so it
+survives a power cut. Every other transaction (namespace and attribute
+changes, write intents, shard news, the repair queue) runs with
+``synchronous=NORMAL``: no fsync, but it survives a killed daemon at once
+(the WAL is in the page cache), and because the WAL is sequential the next
+FULL commit (a close, fsync or fsyncdir) makes it durable too. A write
+intent lost to a power cut leaves an unknown shard, which scrub removes
 after its grace period.
 
 Schema migrations are versioned (``PRAGMA user_version``); ``MIGRATIONS[i]``
@@ -181,7 +186,7 @@ class Catalog:
         try:
             self.db = sqlite3.connect(str(self.path), isolation_level=None, check_same_thread=False, timeout=30)
             self.db.execute("PRAGMA journal_mode=WAL")
-            self.db.execute("PRAGMA synchronous=FULL")
+            self.db.execute("PRAGMA synchronous=NORMAL")
             self.db.execute("PRAGMA foreign_keys=OFF")
             self._migrate()
         except sqlite3.DatabaseError as e:
@@ -202,22 +207,31 @@ class Catalog:
                 self.db.execute(f"PRAGMA user_version={i + 1}")
 
     class _Tx:
-        def __init__(self, db: sqlite3.Connection):
-            self.db = db
+        def __init__(self, db: sqlite3.Connection, durable: bool):
+            self.db, self.durable = db, durable
 
         def __enter__(self):
+            if self.durable:
+                self.db.execute("PRAGMA synchronous=FULL")
             self.db.execute("BEGIN IMMEDIATE")
             return self.db
 
         def __exit__(self, et, ev, tb):
-            if et is None:
-                self.db.execute("COMMIT")
-            else:
-                self.db.execute("ROLLBACK")
+            try:
+                self.db.execute("COMMIT" if et is None else "ROLLBACK")
+            finally:
+                if self.durable:
+                    self.db.execute("PRAGMA synchronous=NORMAL")
             return False
 
-    def _tx(self) -> "Catalog._Tx":
-        return Catalog._Tx(self.db)
+    def _tx(self, durable: bool = False) -> "Catalog._Tx":
+        """A write transaction; durable=True fsyncs the WAL at COMMIT (see the module docstring)."""
+        return Catalog._Tx(self.db, durable)
+
+    def sync(self) -> None:
+        """Make every earlier transaction durable (one fsync of the WAL)."""
+        with self._tx(durable=True) as db:
+            db.execute("UPDATE meta SET value=value WHERE key='generation'")
 
     # -- meta ---------------------------------------------------------------
     def get_meta(self, key: str, default=None):
@@ -232,7 +246,7 @@ class Catalog:
         if self.get_meta("pool_id") is not None:
             return False
         t = now_ns()
-        with self._tx() as db:
+        with self._tx(durable=True) as db:
             for key, val in (("pool_id", pool_id), ("pool_name", name), ("k", k), ("n", n),
                              ("stripe_size", stripe_size), ("created", time.time()),
                              ("next_version", 1), ("generation", 0)):
@@ -250,7 +264,7 @@ class Catalog:
 
     def reserve_versions(self, count: int) -> int:
         """Reserve `count` stripe versions durably; returns the first."""
-        with self._tx() as db:
+        with self._tx(durable=True) as db:
             first = int(db.execute("SELECT value FROM meta WHERE key='next_version'").fetchone()[0])
             db.execute("UPDATE meta SET value=? WHERE key='next_version'", (first + count,))
         return first
@@ -267,7 +281,7 @@ class Catalog:
         return [StoreRecord(store_id=r[0], path=r[1], domain=r[2], admin=r[3], replaces=r[4], added=r[5], away_since=r[6]) for r in rows]
 
     def add_store(self, *, store_id: str, path: str, domain: str, replaces: str | None = None) -> None:
-        with self._tx() as db:
+        with self._tx(durable=True) as db:
             db.execute("INSERT INTO stores(store_id, path, domain, replaces, added) VALUES(?,?,?,?,?)",
                        (store_id, path, domain, replaces, time.time()))
             self._bump(db)
@@ -277,7 +291,7 @@ class Catalog:
         if not fields or set(fields) - allowed:
             raise ValueError(f"bad store fields {fields}")
         cols = ", ".join(f"{k}=?" for k in fields)
-        with self._tx() as db:
+        with self._tx(durable=True) as db:
             db.execute(f"UPDATE stores SET {cols} WHERE store_id=?", (*fields.values(), store_id))
             self._bump(db)
 
@@ -543,13 +557,9 @@ class Catalog:
         """Record stripes about to be written: (idx, version, placement as
         comma-separated store ids). No fsync (see the module docstring)."""
         t = time.time()
-        self.db.execute("PRAGMA synchronous=NORMAL")
-        try:
-            with self._tx() as db:
-                db.executemany("INSERT OR REPLACE INTO intents(file_id, idx, version, placement, since) VALUES(?,?,?,?,?)",
-                               [(file_id, i, v, p, t) for i, v, p in items])
-        finally:
-            self.db.execute("PRAGMA synchronous=FULL")
+        with self._tx() as db:
+            db.executemany("INSERT OR REPLACE INTO intents(file_id, idx, version, placement, since) VALUES(?,?,?,?,?)",
+                           [(file_id, i, v, p, t) for i, v, p in items])
 
     def intents(self) -> list[tuple[str, int, int, list[str]]]:
         return [(r[0], r[1], r[2], [s for s in r[3].split(",") if s])
@@ -586,7 +596,7 @@ class Catalog:
         past the end is trimmed in place (bytes past a stripe's length read as
         zeros). Intents of these stripes are dropped."""
         t = now_ns()
-        with self._tx() as db:
+        with self._tx(durable=True) as db:
             node = self.get_inode(ino)
             if not node.is_reg:
                 raise IsADirectory(f"inode {ino} is not a regular file")
@@ -995,7 +1005,7 @@ class Catalog:
         repair; garbage listed on the old store is forgotten (it went with the
         old disk). Returns the number of shard rows re-pointed."""
         t = time.time()
-        with self._tx() as db:
+        with self._tx(durable=True) as db:
             row = db.execute("SELECT domain FROM stores WHERE store_id=?", (old_id,)).fetchone()
             if row is None:
                 raise CatalogError(f"store {old_id} is not in the catalog")

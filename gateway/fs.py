@@ -210,7 +210,7 @@ class ShoalFS(pyfuse3.Operations):
 
     @handler
     async def fsyncdir(self, fh, datasync):
-        pass  # every namespace change is already a durable catalog commit
+        await self.pool.sync()  # namespace changes become durable (they are already safe from a killed daemon)
 
     @handler
     async def statfs(self, ctx):

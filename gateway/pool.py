@@ -780,8 +780,17 @@ class Pool:
         self._garbage_news.extend(items)
         self._gc_wake.set()
 
+    async def sync(self) -> None:
+        """Make every namespace change so far durable (fsyncdir)."""
+        await self.db(self.catalog.sync)
+
     async def fsync(self, fh: int) -> None:
-        await self.commit(fh)
+        """commit, and make the file's namespace entry and attributes durable
+        too (they may have changed without a data commit)."""
+        of = self._handle(fh).of
+        async with of.lock:
+            if not await self._commit_locked(of):
+                await self.db(self.catalog.sync)
 
     async def flush(self, fh: int) -> None:
         await self.commit(fh)
@@ -796,13 +805,14 @@ class Pool:
         async with of.lock:
             await self._commit_locked(of)
 
-    async def _commit_locked(self, of: OpenFile) -> None:
+    async def _commit_locked(self, of: OpenFile) -> bool:
+        """Returns True if a durable catalog commit was made."""
         if of.error is not None:
             err, of.error = of.error, None
             await self._reset(of)
             raise err
         if not of.changed:
-            return
+            return False
         for ds in sorted(of.dirty.values(), key=lambda d: d.idx):
             await self._dispatch(of, ds)
         batch = dict(of.inflight)
@@ -843,6 +853,7 @@ class Pool:
             of.cut = None
             of.records.clear()
             self.cache.drop_file(of.file_id)
+        return True
         if batch:
             self._gc_wake.set()
 

@@ -30,13 +30,28 @@ def stripe(idx, version, length, stores=("s0", "s1", "s2"), state="ok"):
                      shards=tuple(ShardLoc(shard=i, store_id=s, state=state) for i, s in enumerate(stores)))
 
 
-def test_durability_settings(c):
-    # A commit that acknowledges data must survive power loss: WAL with
-    # synchronous=FULL (2) fsyncs the WAL on every commit (SQLite docs, PRAGMA synchronous).
+def test_durability_settings(c, monkeypatch):
+    # A commit that acknowledges data must survive power loss: in WAL mode,
+    # synchronous=FULL (2) fsyncs the WAL at every COMMIT, NORMAL (1) does not
+    # (SQLite documentation, PRAGMA synchronous). Record the level in force
+    # at each COMMIT.
     assert c.db.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
-    assert c.db.execute("PRAGMA synchronous").fetchone()[0] == 2
-    c.add_intents("b" * 32, [(0, 1, "s0")])  # intents use NORMAL, then FULL is restored
-    assert c.db.execute("PRAGMA synchronous").fetchone()[0] == 2
+    levels = []
+    real = cat.Catalog._Tx.__exit__
+
+    def spy(self, et, ev, tb):
+        levels.append(self.db.execute("PRAGMA synchronous").fetchone()[0])
+        return real(self, et, ev, tb)
+
+    monkeypatch.setattr(cat.Catalog._Tx, "__exit__", spy)
+    f = c.create(cat.ROOT, b"a", mode=FILE, uid=0, gid=0)
+    c.add_intents("b" * 32, [(0, 1, "s0")])
+    assert levels == [1, 1]  # namespace change and intent: no fsync
+    c.commit_file(f.ino, size=10, mtime_ns=None, stripes=[stripe(0, 1, 10)], stripe_size=4096)
+    c.reserve_versions(10)
+    c.sync()
+    assert levels[2:] == [2, 2, 2]  # data commit, version reservation, explicit sync: fsync
+    assert c.db.execute("PRAGMA synchronous").fetchone()[0] == 1
 
 
 def test_schema_versioned(tmp_path, c):
