@@ -54,6 +54,7 @@ log = logging.getLogger(__name__)
 VERSION_BLOCK = 1024  # stripe versions reserved per durable catalog write
 GC_INTERVAL = 2.0
 GC_BATCH = 128  # shard deletions per worker-thread call
+PREFETCH_STRIPES = 2  # a sequential reader keeps this many stripes coming ahead of it
 
 
 def pad(data: bytes, length: int) -> bytes:
@@ -294,8 +295,11 @@ class Pool:
         self.forced_read_only = False
         self._db_limiter = trio.CapacityLimiter(1)
         self.io = StripeIO(pool_id=self.pool_id, slots=slots, on_bad_shard=self._bad_shard)
-        self.budget = ByteBudget(cfg.memory_cap)
-        self.cache = StripeCache(min(64 << 20, cfg.memory_cap // 4))
+        # The memory cap covers the decoded-stripe cache, dirty stripes, and
+        # in-flight stripes with their parity.
+        self.cache = StripeCache(min(64 << 20, cfg.memory_cap // 8))
+        self.budget = ByteBudget(cfg.memory_cap - self.cache.cap)
+        self.parity_charge = self.stripe_size * (self.n - self.k) // self.k
         self.open_files: dict[Ino, OpenFile] = {}
         self.handles: dict[int, Handle] = {}
         self._next_fh = 1
@@ -600,7 +604,10 @@ class Pool:
             victim = self._oldest_dirty()
             if victim is not None:
                 vof, vds = victim
-                await self._dispatch(vof, vds)
+                try:
+                    await self._dispatch(vof, vds)
+                except ShoalError:
+                    pass  # the victim's file carries the error (of.error); this write goes on
             else:
                 await self.budget.wait_fit(S)
         base, blen = await self._base_of(of, idx)
@@ -700,6 +707,7 @@ class Pool:
             infl.data = infl.chunks = None
             self.budget.give(S)
             return infl
+        self.budget.take(self.parity_charge)  # the encoded parity, until the puts finish
         self.nursery.start_soon(self._write_stripe, of, infl)
         return infl
 
@@ -738,7 +746,7 @@ class Pool:
                         nursery.start_soon(self._put_one, of, infl, i, sid, files[i])
         finally:
             infl.data = infl.chunks = None
-            self.budget.give(self.stripe_size)
+            self.budget.give(self.stripe_size + self.parity_charge)
             infl.quorum.set()
             infl.done.set()
             if infl.abandoned:
@@ -956,7 +964,9 @@ class Pool:
             parts.append(chunk)
             pos += take
         if offset == h.next_offset or offset == 0:
-            self._prefetch(of, (end - 1) // S + 1)
+            nxt = (end - 1) // S + 1
+            for ahead in range(PREFETCH_STRIPES):
+                self._prefetch(of, nxt + ahead)
         h.next_offset = end
         return parts[0] if len(parts) == 1 else b"".join(parts)
 

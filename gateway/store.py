@@ -576,6 +576,19 @@ class Store:
         self._n["bytes_read"] += len(data)
         return data
 
+    async def get_checked(self, name: ShardName, *, check: Callable[[bytes], T], max_bytes: int | None = None) -> T:
+        """get(), then check(data) in the same worker thread: one round trip
+        for a read and its verification. check must be pure (it touches no
+        store); its ShardCorrupt passes through as the shard's fault, not the store's."""
+        def read_and_check(rel: str) -> tuple[int, T]:
+            data = self._read_sync(rel, None, max_bytes)
+            return len(data), check(data)
+
+        size, out = await self._timed("get", self._read_hist, read_and_check, name.relpath())
+        self._n["gets"] += 1
+        self._n["bytes_read"] += size
+        return out
+
     async def get_prefix(self, name: ShardName, size: int) -> bytes:
         """The first `size` bytes (fewer if the file is shorter), for header scans."""
         if size < 0:

@@ -124,8 +124,7 @@ class StripeIO:
             raise ShardMissing(f"store {slot.path if slot else store_id} is {slot.state if slot else 'unknown'}")
         name = ShardName(file_id=ref.file_id, stripe_index=ref.idx, version=ref.version, shard_index=shard)
         limit = codec.shard_length(ref.coded_length, ref.k) + 8192
-        blob = await slot.store.get(name, max_bytes=limit)
-        return await trio.to_thread.run_sync(self._verify, blob, ref, shard)
+        return await slot.store.get_checked(name, max_bytes=limit, check=lambda blob: self._verify(blob, ref, shard))
 
     def _order(self, ref: StripeRef) -> list[tuple[int, StoreId]]:
         """Data shards before parity; shards believed good before doubtful ones."""

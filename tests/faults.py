@@ -286,6 +286,11 @@ class FaultyStore:
         data = await self.store.get(name, max_bytes=max_bytes)
         return self._flip(data) if action == "corrupt" else data
 
+    async def get_checked(self, name: ShardName, *, check, max_bytes: int | None = None):
+        """Through get(), so read faults apply; the check runs in a worker thread."""
+        data = await self.get(name, max_bytes=max_bytes)
+        return await trio.to_thread.run_sync(check, data)
+
     async def get_prefix(self, name: ShardName, size: int) -> bytes:
         action = await self._pre("get_prefix")
         data = await self.store.get_prefix(name, size)
