@@ -103,7 +103,7 @@ class ShoalFS(pyfuse3.Operations):
         a.st_gid = node.gid
         a.st_rdev = node.rdev
         a.st_size = node.size
-        a.st_blksize = 1 << 17
+        a.st_blksize = 1 << 20  # cp and friends size their buffers by it: 1 MiB = the largest FUSE write
         a.st_blocks = -(-node.size // 512)
         a.st_atime_ns = node.atime_ns
         a.st_mtime_ns = node.mtime_ns
