@@ -71,6 +71,11 @@ def init_pool(cfg: PoolConfig) -> InitReport:
             except StoreError as e:
                 problems.append(str(e))
                 continue
+            if label is None and str(path) in known:
+                problems.append(f"{path}: the catalog has it as store {known[str(path)].store_id}, but its label is "
+                                "gone (a wiped or new disk, or the wrong one mounted there); to rebuild onto it, run "
+                                f"`shoal store replace {cfg.source} {path}`")
+                continue
             if label is None:
                 if not is_empty_dir(path):
                     problems.append(f"{path}: not empty and has no Shoal label; Shoal writes only into an empty "

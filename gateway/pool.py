@@ -225,6 +225,11 @@ class Handle:
     of: OpenFile
     append: bool = False
     next_offset: int = -1  # where a sequential reader will read next
+    # A commit failed while this handle was open: its next flush or fsync
+    # reports it. flush carries no owner, so without this another close of
+    # the same file (a dup, a child's close-on-exec) could take the error
+    # and the writer's own close() would then return 0 for lost data.
+    pending_error: ShoalError | None = None
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -795,10 +800,18 @@ class Pool:
     async def fsync(self, fh: int) -> None:
         """commit, and make the file's namespace entry and attributes durable
         too (they may have changed without a data commit)."""
-        of = self._handle(fh).of
+        h = self._handle(fh)
+        of = h.of
+        if h.pending_error is not None:
+            err, h.pending_error = h.pending_error, None
+            raise err
         async with of.lock:
-            if not await self._commit_locked(of):
-                await self.db(self.catalog.sync)
+            try:
+                if not await self._commit_locked(of):
+                    await self.db(self.catalog.sync)
+            except ShoalError as e:
+                self._spread_error(of, e, except_fh=fh)
+                raise
 
     async def flush(self, fh: int) -> None:
         await self.commit(fh)
@@ -806,12 +819,26 @@ class Pool:
     async def commit(self, fh: int | None, of: OpenFile | None = None) -> None:
         """The write-quorum gate. Returns once every stripe of the file is durable
         on >= w stores and the catalog says so durably. Idempotent. Raises
-        QuorumError; the file's committed content is then unchanged and the
-        open file falls back to it."""
+        QuorumError; the file's committed content is then unchanged, the open
+        file falls back to it, and every other handle open on the file reports
+        the same error at its next flush or fsync."""
+        h = self._handle(fh) if fh is not None else None
         if of is None:
-            of = self._handle(fh).of
+            of = h.of
+        if h is not None and h.pending_error is not None:
+            err, h.pending_error = h.pending_error, None
+            raise err
         async with of.lock:
-            await self._commit_locked(of)
+            try:
+                await self._commit_locked(of)
+            except ShoalError as e:
+                self._spread_error(of, e, except_fh=fh)
+                raise
+
+    def _spread_error(self, of: OpenFile, err: ShoalError, *, except_fh: int | None) -> None:
+        for other in self.handles.values():
+            if other.of is of and other.fh != except_fh:
+                other.pending_error = err
 
     async def _commit_locked(self, of: OpenFile) -> bool:
         """Returns True if a durable catalog commit was made."""
@@ -861,9 +888,9 @@ class Pool:
             of.cut = None
             of.records.clear()
             self.cache.drop_file(of.file_id)
-        return True
         if batch:
             self._gc_wake.set()
+        return True
 
     async def _reset(self, of: OpenFile) -> None:
         """Drop uncommitted state: the file reads as its last committed content."""

@@ -96,3 +96,13 @@ def test_state_dir_on_read_only_filesystem(tmp_path):
         assert not (stores[0] / LABEL_NAME).exists()
     finally:
         subprocess.run(["umount", str(ro)], check=True)
+
+
+def test_init_refuses_a_wiped_store_it_knows(tmp_path):
+    cfg = six_store_config(tmp_path)
+    run("init", cfg)
+    (tmp_path / "disk-2" / LABEL_NAME).unlink()  # the disk was wiped and is empty again
+    for p in sorted((tmp_path / "disk-2").rglob("*"), reverse=True):
+        p.rmdir()
+    p = run("init", cfg, check=False)
+    assert p.returncode != 0 and "store replace" in p.stderr and "Traceback" not in p.stderr

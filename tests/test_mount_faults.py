@@ -15,6 +15,7 @@ import random
 import signal
 import stat
 import subprocess
+import sys
 import threading
 from pathlib import Path
 
@@ -24,11 +25,10 @@ import pytest
 from gateway import errors as E
 from gateway.fs import ShoalFS
 from mounting import (
-    MountProcess, clear_stale_mount, is_mounted, mount_tmpfs, requires_fuse, requires_root, shoal_argv, umount,
+    access_errno, clear_stale_mount, is_mounted, mount_tmpfs, requires_fuse, requires_root, shoal_argv, umount,
 )
 from test_mount import (  # noqa: F401  (make_pool is a fixture)
-    MiB, STRIPE, drop_kernel_caches, instrument_bytes, make_pool, run, sha256sum, shard_files, shoal_status,
-    wait_for,
+    MiB, STRIPE, drop_kernel_caches, instrument_bytes, make_pool, run, sha256sum, shard_files, wait_for,
 )
 
 
@@ -56,6 +56,11 @@ def write_sources(dir: Path, names_sizes: dict[str, int], seed: int) -> dict[str
         p.write_bytes(instrument_bytes(rng, size))
         out[name] = p
     return out
+
+
+def pull(store: Path) -> None:
+    """Pull a store's disk: unmount its tmpfs, lazily, since the daemon may be using it this instant."""
+    umount(store, lazy=True)
 
 
 def read_errno(path: Path) -> int:
@@ -116,6 +121,7 @@ def handler_calls(fs: ShoalFS) -> dict[str, object]:
         "rename": lambda: fs.rename(1, b"a", 1, b"b", 0, ctx),
         "opendir": lambda: fs.opendir(1, ctx),
         "readdir": lambda: fs.readdir(7, 0, pyfuse3.ReaddirToken()),
+        "fsyncdir": lambda: fs.fsyncdir(7, False),
         "statfs": lambda: fs.statfs(ctx),
         "getxattr": lambda: fs.getxattr(1, b"user.instrument", ctx),
         "setxattr": lambda: fs.setxattr(1, b"user.instrument", b"v", ctx),
@@ -150,7 +156,8 @@ def test_every_operation_shoalfs_overrides_has_the_catch_all():
     # reference: pyfuse3.Operations, whose methods are the handlers the kernel can reach
     overridden = [n for n, v in vars(ShoalFS).items()
                   if callable(v) and not n.startswith("_") and hasattr(pyfuse3.Operations, n)]
-    assert set(overridden) - {"forget"} <= set(HANDLERS) | {"releasedir", "fsyncdir"}
+    # A new handler needs an entry in handler_calls, so the test above covers it too.
+    assert set(overridden) - {"forget", "releasedir"} <= set(HANDLERS)
     unwrapped = [n for n in overridden if n != "forget" and not hasattr(vars(ShoalFS)[n], "__wrapped__")]
     assert unwrapped == []
 
@@ -185,13 +192,13 @@ def test_pulled_stores_reads_exact_then_eio_then_read_only_then_refused(make_poo
     one, two, three = pool.stores[0], pool.stores[3], pool.stores[5]
 
     # One store away: still w = 5 stores, so new files are acknowledged.
-    one.pull()
+    one.pull(lazy=True)
     status_when(pool, lambda s: states(s).count("offline") == 1, "one store seen offline")
     extra = write_sources(tmp_path / "extra", {"with-five-stores.raw": 4 * STRIPE + 9}, 3)["with-five-stores.raw"]
     run("cp", extra, mnt / extra.name)
 
     # n - k = 2 stores away: reads stay bit-exact; writes are refused.
-    two.pull()
+    two.pull(lazy=True)
     drop_kernel_caches()
     for src in early.values():
         run("cmp", src, mnt / src.name)  # reference: the source on the kernel's filesystem
@@ -207,7 +214,7 @@ def test_pulled_stores_reads_exact_then_eio_then_read_only_then_refused(make_poo
     run("cmp", early["early-3.raw"], mnt / "early-3.raw")  # reference: the source; the old content remains
 
     # One more: fewer than k shards of each stripe. Reads fail, never with wrong bytes.
-    three.pull()
+    three.pull(lazy=True)
     drop_kernel_caches()
     for src in late.values():
         assert read_errno(mnt / src.name) == errno.EIO, src.name  # reference: errno(3); no bytes at all
@@ -236,7 +243,7 @@ def test_pulled_stores_reads_exact_then_eio_then_read_only_then_refused(make_poo
     assert mp.stop(signal.SIGTERM) == 0
 
     # With 3 stores (< k) the mount is refused, with a message that says why.
-    three.pull()
+    three.pull(lazy=True)
     mp = pool.mount(wait=False)
     assert mp.wait(60) != 0
     assert "only 3 of 6 stores are usable, k = 4" in mp.log_text()
@@ -251,9 +258,9 @@ def test_close_and_fsync_fail_with_eio_below_the_write_quorum(make_pool, tmp_pat
     old = instrument_bytes(random.Random(4), 3 * STRIPE + 10)
     (mnt / "run.raw").write_bytes(old)
     # The daemon does not probe again, so it still sends shards to the pulled stores and meets the failure.
-    umount(pool.store_paths[1])
+    pull(pool.store_paths[1])
     (mnt / "five.raw").write_bytes(b"acknowledged by five stores" * 5000)  # w = 5 stores still take it
-    umount(pool.store_paths[2])
+    pull(pool.store_paths[2])
     f = open(mnt / "run.raw", "r+b")
     f.write(instrument_bytes(random.Random(5), 2 * STRIPE))
     f.flush()
@@ -274,6 +281,67 @@ def test_close_and_fsync_fail_with_eio_below_the_write_quorum(make_pool, tmp_pat
     assert pool.proc.alive
 
 
+HALF_WRITER = """\
+import os, sys
+path, src, flags = sys.argv[1], sys.argv[2], int(sys.argv[3])
+data = open(src, 'rb').read()
+half = len(data) // 2
+try:
+    fd = os.open(path, flags, 0o644)
+    for at in range(0, half, 1 << 16):
+        os.write(fd, data[at:min(at + (1 << 16), half)])
+    print('half', flush=True)
+    sys.stdin.readline()
+    for at in range(half, len(data), 1 << 16):
+        os.write(fd, data[at:at + (1 << 16)])
+    os.close(fd)
+    print('closed', flush=True)
+except OSError as e:
+    print('error', e.errno, flush=True)
+"""
+
+
+def copy_with_a_pause(mnt_file: Path, src: Path, flags: int, during) -> str:
+    """Write src to mnt_file from another process, run during() half-way, and
+    return how it ended: 'closed' or 'error <errno>'. The writer is its own
+    process so that the test's own forks (umount) hold no copy of its descriptor:
+    each closing copy would flush and commit."""
+    with subprocess.Popen([sys.executable, "-c", HALF_WRITER, str(mnt_file), str(src), str(flags)],
+                          stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True) as p:
+        try:
+            assert p.stdout.readline().strip() == "half"
+            during()
+            p.stdin.write("go\n")
+            p.stdin.flush()
+            out = p.stdout.readline().strip()
+            assert p.wait(60) == 0
+        finally:
+            if p.poll() is None:
+                p.kill()
+    return out
+
+
+@mount_test
+@pytest.mark.allow_errors(r"flush: |stripe \d+ of file|fewer than w|not written")
+def test_stores_pulled_in_the_middle_of_a_copy(make_pool, tmp_path):
+    pool = make_pool(4, 6, 5, store_size="96m")
+    mnt = pool.mountpoint
+    srcs = write_sources(tmp_path / "src", {"first.raw": 200 * STRIPE + 5, "second.raw": 150 * STRIPE + 3}, 10)
+    new_file = os.O_CREAT | os.O_WRONLY | os.O_TRUNC
+    # One store pulled mid-copy: five (= w) stores remain, the copy is acknowledged and exact.
+    assert copy_with_a_pause(mnt / "first.raw", srcs["first.raw"], new_file,
+                             lambda: pull(pool.store_paths[1])) == "closed"
+    drop_kernel_caches()
+    run("cmp", srcs["first.raw"], mnt / "first.raw")  # reference: the source on the kernel's filesystem
+    # A second one pulled while the file is being overwritten: the copy fails
+    # (a write refused, or the close) and the file keeps its committed content.
+    end = copy_with_a_pause(mnt / "first.raw", srcs["second.raw"], new_file, lambda: pull(pool.store_paths[4]))
+    assert end in (f"error {errno.EIO}", f"error {errno.EROFS}"), end
+    drop_kernel_caches()
+    run("cmp", srcs["first.raw"], mnt / "first.raw")  # reference: the first source, the last acknowledged content
+    assert pool.proc.alive
+
+
 # -- a corrupt shard -----------------------------------------------------------------------------
 
 
@@ -286,7 +354,8 @@ def test_corrupt_shard_is_read_around_and_queued_for_repair(make_pool, tmp_path)
     before = pool.status()
     assert before["repair"]["queued_stripes"] == 0
     # A data shard (index < k) of the middle stripe: the reader fetches data shards first.
-    (victim,) = [p for p in shard_files(pool.store_paths) if p.name.split(".")[1] == "1" and p.name.split(".")[3] == "0"]
+    # Shard files are named <file id>.<stripe>.<version>.<shard>.shd.
+    (victim,) = [p for p in shard_files(pool.store_paths) if p.name.split(".")[1::2] == ["1", "0"]]
     blob = bytearray(victim.read_bytes())
     blob[-100] ^= 0x40
     victim.write_bytes(bytes(blob))
@@ -298,6 +367,35 @@ def test_corrupt_shard_is_read_around_and_queued_for_repair(make_pool, tmp_path)
                      "the stripe with the corrupt shard queued for repair")
     assert st["pool"]["checksum_failures"] >= 1
     assert st["pool"]["degraded_reads"] >= 1
+
+
+@mount_test
+@pytest.mark.allow_errors(r"flush: |read: |shards readable|checksum")
+def test_a_pushed_out_stripe_that_cannot_be_merged_fails_its_own_file(make_pool, tmp_path):
+    # Regression: with memory short, another file's writer pushed out a half-
+    # written stripe whose previous content could not be read. That writer got
+    # the EIO, while the stripe's own file forgot the write and its close()
+    # returned success.
+    pool = make_pool(4, 6, 5, extra={"pool": {"memory_cap": 2 * STRIPE}})
+    mnt = pool.mountpoint
+    (mnt / "damaged.raw").write_bytes(instrument_bytes(random.Random(13), STRIPE))
+    for victim in shard_files(pool.store_paths)[:3]:  # 3 of 6 shards bad: fewer than k = 4 readable
+        blob = bytearray(victim.read_bytes())
+        blob[-7] ^= 0x01
+        victim.write_bytes(bytes(blob))
+    src = write_sources(tmp_path / "src", {"other.raw": 3 * STRIPE}, 14)["other.raw"]
+    # No fork while fd is open: a child's close-on-exec would flush it and take the error.
+    fd = os.open(mnt / "damaged.raw", os.O_RDWR)
+    try:
+        os.pwrite(fd, b"calibration", 100)  # a partial stripe: committing it needs the old bytes
+        (mnt / "other.raw").write_bytes(src.read_bytes())  # its second stripe pushes damaged.raw's out
+    finally:
+        with pytest.raises(OSError) as info:
+            os.close(fd)
+    assert info.value.errno == errno.EIO  # reference: errno(3); the lost write is reported, not acknowledged
+    run("cmp", src, mnt / "other.raw")  # reference: the source; the other file is unharmed
+    assert read_errno(mnt / "damaged.raw") == errno.EIO  # and the damaged stripe never reads as wrong bytes
+    assert pool.proc.alive
 
 
 # -- a killed daemon ---------------------------------------------------------------------------
@@ -340,6 +438,7 @@ def test_sigkill_during_a_copy_loop_keeps_every_acknowledged_file(make_pool, tmp
         t.join(60)
     assert not t.is_alive()
     assert failure and failure[0].errno in (errno.ENOTCONN, errno.ECONNABORTED, errno.EIO), failure
+    assert access_errno(mnt) == errno.ENOTCONN  # reference: the kernel's answer for a mount whose daemon died
     assert clear_stale_mount(mnt)  # fusermount3 -uz of the dead mount
     pool.mount()
     for i in closed:
@@ -421,7 +520,7 @@ def test_daemon_starts_every_component_present(make_pool):
 @pytest.mark.slow
 @pytest.mark.allow_errors(r"read: |stripe \d+ of file|StripeLost")
 def test_acceptance_six_stores_two_pulled_read_exact_third_pulled_eio_and_lost(make_pool, tmp_path):
-    # The decoded-stripe cache is a quarter of memory_cap: 64 MiB keeps it smaller
+    # The decoded-stripe cache is a slice of memory_cap: 64 MiB keeps it far smaller
     # than the file, so the last read must reach the stores.
     pool = make_pool(4, 6, 5, stripe_size="4MiB", store_size="64m", extra={"pool": {"memory_cap": "64MiB"}})
     mnt = pool.mountpoint
@@ -437,8 +536,8 @@ def test_acceptance_six_stores_two_pulled_read_exact_third_pulled_eio_and_lost(m
     assert pool.status()["stripes"]["intact"] == stripes
 
     assert pool.proc.stop(signal.SIGTERM) == 0
-    umount(pool.store_paths[1])
-    umount(pool.store_paths[4])
+    pull(pool.store_paths[1])
+    pull(pool.store_paths[4])
     pool.mount()
     drop_kernel_caches()
     run("cmp", src, mnt / "spectra.raw")  # reference: cmp against the source on the kernel's filesystem
@@ -446,7 +545,7 @@ def test_acceptance_six_stores_two_pulled_read_exact_third_pulled_eio_and_lost(m
     st = pool.status()
     assert st["stripes"]["critical"] == stripes and st["stripes"]["lost"] == 0
 
-    umount(pool.store_paths[2])
+    pull(pool.store_paths[2])
     drop_kernel_caches()
     assert read_errno(mnt / "spectra.raw") == errno.EIO  # reference: errno(3): an error, never wrong bytes
     r = subprocess.run(["cmp", str(src), str(mnt / "spectra.raw")], capture_output=True, text=True)

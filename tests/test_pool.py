@@ -234,3 +234,24 @@ async def test_capacity_is_free_space_times_k_over_n(tmp_path):
     async with open_pool(cfg) as pool:
         free = sum(s.free_bytes for s in pool.slots.values())
         assert pool.statfs().free_bytes == free * 4 // 6
+
+
+async def test_a_failed_commit_is_reported_to_every_open_handle(tmp_path):
+    """flush carries no owner: a dup's close must not take the writer's error away."""
+    cfg = make_config(tmp_path, k=2, n=3, w=3, stripe_size=16 * KiB, extra="[store_io]\ndeadline = 0.5")
+    async with open_pool(cfg) as pool:
+        ino = await write_file(pool, b"f", b"v1" * 100)
+        writer = await pool.open(ino, write=True)
+        dup = await pool.open(ino, write=True)  # another descriptor of the same file
+        stores = _faulty(pool, {0}, "unavailable")
+        await pool.write(writer, 0, os.urandom(40 * KiB))
+        with pytest.raises(QuorumError):
+            await pool.flush(dup)  # the dup closes first and sees the failure
+        with pytest.raises(QuorumError):
+            await pool.flush(writer)  # and so does the writer's own close
+        await pool.flush(writer)  # reported once per handle
+        for s in stores:
+            s.release()
+        await pool.release(dup)
+        await pool.release(writer)
+        assert await read_file(pool, b"f") == b"v1" * 100
