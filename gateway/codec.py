@@ -24,7 +24,7 @@ from __future__ import annotations
 import functools
 import re
 import struct
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, fields
 from typing import Union
 
@@ -135,6 +135,20 @@ def encode(data: Buffer, k: int, n: int) -> list[Buffer]:
     if n > k:
         # Ask zfec for the parity blocks only; it computes nothing else.
         shards.extend(_encoder(k, n).encode(shards, list(range(k, n))))
+    return shards
+
+
+def encode_pieces(pieces: Sequence[Buffer], k: int, n: int) -> list[Buffer]:
+    """Like encode, for a stripe already cut into its k data shards (each of
+    shard_length bytes, so the stripe is k whole shards): the pieces are the
+    data payloads as they are, with no copy. Raises ValueError otherwise."""
+    _check_kn(k, n)
+    views = [_bytes_view(p) for p in pieces]
+    if len(views) != k or not views or any(len(v) != len(views[0]) for v in views) or not len(views[0]):
+        raise ValueError(f"encode_pieces needs k={k} non-empty pieces of one length")
+    shards: list[Buffer] = list(views)
+    if n > k:
+        shards.extend(_encoder(k, n).encode(list(views), list(range(k, n))))
     return shards
 
 

@@ -88,17 +88,23 @@ class StripeIO:
         self.stats = IOStats()
 
     # -- write ------------------------------------------------------------
-    def _encode(self, data: bytes, file_id: FileId, idx: int, version: int, k: int, n: int) -> list[list]:
-        payloads = codec.encode(data, k, n)
+    def _encode(self, data, file_id: FileId, idx: int, version: int, k: int, n: int) -> list[list]:
+        if isinstance(data, list):  # the stripe's k data shards, as written
+            payloads = codec.encode_pieces(data, k, n)
+            length = sum(len(p) for p in data)
+        else:
+            payloads = codec.encode(data, k, n)
+            length = len(data)
         out = []
         for i, p in enumerate(payloads):
             h = codec.make_header(pool_id=self.pool_id, file_id=file_id, stripe_index=idx, stripe_version=version,
-                                  shard_index=i, k=k, n=n, stripe_length=len(data), payload=p)
+                                  shard_index=i, k=k, n=n, stripe_length=length, payload=p)
             out.append(codec.pack(h, p))
         return out
 
-    async def encode(self, data: bytes, *, file_id: FileId, idx: int, version: int, k: int, n: int) -> list[list]:
-        """Shard files (lists of buffers) for shards 0..n-1, built in a worker thread."""
+    async def encode(self, data, *, file_id: FileId, idx: int, version: int, k: int, n: int) -> list[list]:
+        """Shard files (lists of buffers) for shards 0..n-1, built in a worker
+        thread. data is the stripe's bytes, or a list of its k data shards."""
         return await trio.to_thread.run_sync(self._encode, data, file_id, idx, version, k, n, limiter=self.code_limiter)
 
     async def put_shard(self, store_id: StoreId, name: ShardName, buffers: list) -> None:

@@ -19,6 +19,8 @@ import threading
 
 import blake3
 import msgpack
+import random
+
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -502,3 +504,18 @@ def test_fuzz_resigned_headers(data):
     except ShardCorrupt:
         return
     assert isinstance(h, ShardHeader) and codec.verify(h, payload)
+
+
+@pytest.mark.parametrize("k, n", [(1, 3), (4, 6), (5, 9), (6, 6)])
+def test_encode_pieces_matches_encode(k, n):
+    """Data already cut into k shard-sized pieces codes to the same shards."""
+    rng = random.Random(k * 100 + n)
+    size = 4096 + k
+    pieces = [rng.randbytes(size) for _ in range(k)]
+    whole = b"".join(pieces)
+    assert [bytes(p) for p in codec.encode_pieces(pieces, k, n)] == [bytes(p) for p in codec.encode(whole, k, n)]
+    with pytest.raises(ValueError):
+        codec.encode_pieces(pieces + [pieces[0]], k, n)  # k + 1 pieces
+    if k > 1:
+        with pytest.raises(ValueError):
+            codec.encode_pieces(pieces[:-1] + [pieces[-1][:-1]], k, n)  # unequal lengths
