@@ -701,17 +701,6 @@ class Catalog:
         row = self.db.execute("SELECT ino FROM inodes WHERE file_id=?", (file_id,)).fetchone()
         return None if row is None else row[0]
 
-    def stripes_on_store(self, store_id: str, states: Sequence[str] = SHARD_STATES, limit: int = 1 << 30) -> list[tuple[int, int]]:
-        marks = ",".join("?" * len(states))
-        return [tuple(r) for r in self.db.execute(
-            f"SELECT DISTINCT ino, idx FROM shards WHERE store_id=? AND state IN ({marks}) LIMIT ?", (store_id, *states, limit))]
-
-    def shards_referenced(self, file_id: str) -> set[tuple[int, int, int]]:
-        """(idx, version, shard) of every current shard of a file."""
-        return {tuple(r) for r in self.db.execute(
-            "SELECT s.idx, s.version, s.shard FROM shards s JOIN inodes i ON i.ino=s.ino WHERE i.file_id=?", (file_id,))}
-
-    # -- recovery, check and mirrors (gateway.recovery, gateway.mirror) ----------
     @classmethod
     def open_read_only(cls, path: Path) -> "Catalog":
         """A read-only connection (SQLite URI ``mode=ro``): it never writes the
@@ -1031,23 +1020,6 @@ class Catalog:
 
     def checkpoint(self) -> None:
         self.db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
-
-    def backup_to(self, dest: Path) -> int:
-        """A consistent snapshot via SQLite's online backup API; returns the generation."""
-        gen = self.generation()
-        out = sqlite3.connect(str(dest))
-        try:
-            self.db.backup(out)
-            out.execute("PRAGMA journal_mode=DELETE")
-        finally:
-            out.close()
-        fd = os.open(dest, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-        return gen
-
 
 def health_of(valid: int, k: int, n: int) -> str:
     if valid >= n:

@@ -148,10 +148,6 @@ class DirtyStripe:
     def covers(self, a: int, b: int) -> bool:
         return any(s <= a and b <= e for s, e in self.spans)
 
-    def truncate(self, length: int) -> None:
-        del self.buf[length:]
-        self.spans = [[a, min(b, length)] for a, b in self.spans if a < length]
-        self.base_length = min(self.base_length, length)
 
 
 @dataclass(eq=False)
