@@ -195,8 +195,11 @@ class _Reader:
 
 
 def _resolve(base: Path, value: str) -> Path:
+    """Absolute, with symlinks resolved in the parent only: the last component
+    may be a hung remote mount, and stat-ing it would block every command."""
     p = Path(os.path.expanduser(value))
-    return (p if p.is_absolute() else base / p).resolve()
+    p = p if p.is_absolute() else base / p
+    return Path(os.path.realpath(p.parent)) / p.name
 
 
 def _inside(child: Path, parent: Path) -> bool:

@@ -110,6 +110,22 @@ async def _pool_of(target: Pool | PoolConfig) -> AsyncIterator[Pool]:
         yield target
 
 
+RESOLVE_DEADLINE = 2.0  # seconds for resolving a store path given on the command line
+
+
+async def _resolved(path: str | os.PathLike) -> Path:
+    """PATH made absolute with its symlinks resolved, in a worker thread:
+    resolving stats the path itself, and on a hung mount (the very store an
+    administrator wants to fail) that blocks for good. A path that does not
+    resolve in time is taken as written (made absolute), so the command can
+    still find the store's record without touching the store."""
+    p = Path(os.path.abspath(path))
+    with trio.move_on_after(RESOLVE_DEADLINE):
+        return await trio.to_thread.run_sync(p.resolve, abandon_on_cancel=True)
+    log.warning("%s did not resolve within %g s (a hung mount?); taking the path as given", p, RESOLVE_DEADLINE)
+    return p
+
+
 async def _in_dir_thread(fn, *args):
     """Blocking directory work in a thread, under a deadline (a hung mount must not hang us)."""
     with trio.move_on_after(DIR_DEADLINE):
@@ -198,7 +214,7 @@ async def add_store(target: Pool | PoolConfig, path: str | os.PathLike, domain: 
 
 
 async def _add(cfg: PoolConfig, catalog, db, pool: Pool | None, path, domain, repairer) -> StoreChange:
-    p = Path(path).resolve()
+    p = await _resolved(path)
     pool_id = await db(lambda: catalog.pool_id)
     records = await db(catalog.stores)
     configured = next((s for s in cfg.stores if s.path == p), None)
@@ -271,7 +287,7 @@ async def replace_store(target: Pool | PoolConfig, path: str | os.PathLike, *, r
     (most often: the new disk is not mounted yet, and the rebuild would fill
     the filesystem below the mount point)."""
     async with _pool_of(target) as pool:
-        p = Path(path).resolve()
+        p = await _resolved(path)
         records = await pool.db(pool.catalog.stores)
         old = _record_at(records, p)
         if old is None or old.admin == "retired":
@@ -326,7 +342,7 @@ async def retire_store(target: Pool | PoolConfig, path: str | os.PathLike, *, re
     stores cannot hold n shards per stripe under the spread rule. Calling it
     again on a retiring store continues the drain."""
     async with _pool_of(target) as pool:
-        p = Path(path).resolve()
+        p = await _resolved(path)
         records = await pool.db(pool.catalog.stores)
         rec = _record_at(records, p)
         if rec is None:
@@ -378,7 +394,7 @@ async def fail_store(target: Pool | PoolConfig, path: str | os.PathLike, *, repa
     """Declare the store at PATH failed: it is never read or written again
     and its shards are rebuilt on the other stores."""
     async with _pool_of(target) as pool:
-        p = Path(path).resolve()
+        p = await _resolved(path)
         records = await pool.db(pool.catalog.stores)
         rec = _record_at(records, p)
         if rec is None:

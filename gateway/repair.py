@@ -15,9 +15,11 @@ only shards on stores that serve now), the worker:
    no store, needs a new home; a shard on a store that is away waits while
    the store is within ``[repair] grace`` and needs a new home after it; a
    shard on a retiring store is read (it still serves) and moved.
-2. with k verified shards, decodes the stripe and encodes it again (both in
-   worker threads). The code is deterministic, so a regenerated shard is
-   byte-for-byte the shard that was lost, under the same name.
+2. with k verified shards, decodes the stripe and builds again only the
+   shards it will write (both in worker threads; parity is computed only
+   when a parity shard is among them). The code is deterministic, so a
+   regenerated shard is byte-for-byte the shard that was lost, under the
+   same name.
 3. writes each regenerated shard: back onto its own store when that store
    is writable (a store back within grace gets exactly the shards it
    missed; a replacement store gets everything of the store it replaces,
@@ -114,6 +116,21 @@ class Outcome:
     status: str
     wrote: int = 0  # shards written
     retry_at: float | None = None  # unix time; for waiting and stuck
+
+
+def _shard_files(pool_id, data: bytes, file_id: FileId, idx: int, version: int, k: int, n: int,
+                 wanted: set[int]) -> dict[int, list]:
+    """The files of the wanted shards of a decoded stripe, byte for byte what
+    the write path made (the code is deterministic). Only those are built:
+    parity is computed only if a parity shard is wanted, and only the wanted
+    payloads are checksummed."""
+    payloads = codec.encode(data, k, n if max(wanted) >= k else k)
+    out = {}
+    for i in wanted:
+        h = codec.make_header(pool_id=pool_id, file_id=file_id, stripe_index=idx, stripe_version=version,
+                              shard_index=i, k=k, n=n, stripe_length=len(data), payload=payloads[i])
+        out[i] = codec.pack(h, payloads[i])
+    return out
 
 
 def _nbytes(buffers) -> int:
@@ -398,7 +415,8 @@ class Repairer:
             return Outcome("stuck", retry_at=min(waiting or math.inf, time.time() + self.scan_interval))
         data = await trio.to_thread.run_sync(codec.decode, good, rec.k, rec.n, rec.coded_length,
                                              limiter=pool.io.code_limiter)
-        files = await pool.io.encode(data, file_id=file_id, idx=idx, version=rec.version, k=rec.k, n=rec.n)
+        files = await trio.to_thread.run_sync(_shard_files, pool.pool_id, data, file_id, idx, rec.version, rec.k,
+                                              rec.n, set(targets), limiter=pool.io.code_limiter)
         moving = [i for i in targets if todo[i][0] == "move"]
         intent = None
         if moving:

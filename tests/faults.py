@@ -125,7 +125,7 @@ class _CrashOps(FileOps):
             if self.crashed:
                 return
             self.crashed = True
-            for dst, w in self.inflight.items():
+            for dst, w in list(self.inflight.items()):  # a snapshot: the trio thread adds and removes writes
                 if w.renamed_from is not None and not w.undone:
                     os.rename(dst, w.renamed_from)  # the unsynced rename is lost
                     w.undone = True

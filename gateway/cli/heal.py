@@ -243,6 +243,27 @@ def _print_change(res: dict) -> None:
         print(_repair_summary(res["repair"]))
 
 
+def _finish_retire(cfg, path: str, first: dict) -> dict:
+    """After following a drain: ask the daemon to retire the drained store,
+    unless it is retired already, by the first request (a drain that had
+    finished) or by the repair worker's own sweep meanwhile; asking again
+    then would be refused as 'already retired'."""
+    from ..errors import ControlError
+
+    def retired() -> bool:
+        st = control_client.request(cfg, "status")
+        return any(s["path"] == path and s.get("admin") == "retired" for s in st["stores"])
+
+    if first.get("action") != "retired" and not retired():
+        try:
+            return {**control_client.request(cfg, "store_retire", path=path), "repair": first["repair"]}
+        except ControlError:
+            if not retired():
+                raise
+    return {**first, "action": "retired",
+            "message": f"store {path} is drained and retired: remove its [[store]] table from {cfg.source}"}
+
+
 def cmd_store(args) -> int:
     cfg = config.load(args.config)
     path = os.path.abspath(args.path)
@@ -262,7 +283,7 @@ def cmd_store(args) -> int:
             if wait and args.op != "store_add":
                 res["repair"] = _poll_repair(cfg, show)
                 if args.op == "store_retire":
-                    res = {**control_client.request(cfg, args.op, path=path), "repair": res["repair"]}
+                    res = _finish_retire(cfg, path, res)
         else:
             res = _run(offline_store, cfg, args.op, path, domain, wait, show if wait else None, same_fs)
     finally:
