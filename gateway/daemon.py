@@ -319,9 +319,12 @@ class Daemon:
                 last_ping = now
             await trio.sleep(SNAPSHOT_INTERVAL if not ping else min(SNAPSHOT_INTERVAL, ping))
 
-    async def _metrics(self) -> None:
+    async def _metrics(self, *, task_status=trio.TASK_STATUS_IGNORED) -> None:
+        """Serve /metrics. Started before the mount, and holding a first
+        snapshot before it reports started, so no scrape sees an empty pool."""
         listen = self.cfg.metrics.listen
         if not listen:
+            task_status.started()
             return
         from .metrics import Exporter
 
@@ -330,9 +333,12 @@ class Daemon:
             host, port = await trio.to_thread.run_sync(exporter.serve, listen)
         except (ShoalError, ValueError) as e:
             log.error("metrics endpoint not started on %s: %s", listen, e)
+            task_status.started()
             return
+        exporter.update(self.snapshot())
         self.exporter = exporter
         log.info("metrics at http://%s:%d/metrics", host, port)
+        task_status.started()
         try:
             await trio.sleep_forever()
         finally:
@@ -391,8 +397,8 @@ class Daemon:
                     self._start_components(nursery)
                     self._register_ops()
                     await nursery.start(self.control.run)
-                    nursery.start_soon(self._metrics)
                     await self.refresh_health_counts()
+                    await nursery.start(self._metrics)
                     nursery.start_soon(self._ticker)
 
                     async def fuse() -> None:
