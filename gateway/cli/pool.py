@@ -63,7 +63,9 @@ def format_status(st: dict) -> str:
              f"  {p['files']} files, {_size(p['bytes'])}; usable free space {_size(p['usable_free_bytes'])}", "",
              f"  {'store':<40} {'domain':<12} {'state':<9} {'free':>10} {'size':>10}"]
     for s in st["stores"]:
-        lines.append(f"  {s['path']:<40} {s['domain']:<12} {s['state']:<9} {_size(s['free_bytes']):>10} {_size(s['total_bytes']):>10}")
+        seen = s["state"] in ("online", "full", "retiring")  # otherwise the space figures are from before it left
+        free, total = (_size(s["free_bytes"]), _size(s["total_bytes"])) if seen else ("-", "-")
+        lines.append(f"  {s['path']:<40} {s['domain']:<12} {s['state']:<9} {free:>10} {total:>10}")
         if s["state"] != "online" and s.get("reason"):
             lines.append(f"      {s['reason']}")
     h = st["stripes"]
