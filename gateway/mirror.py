@@ -41,7 +41,6 @@ from pathlib import Path
 
 import trio
 
-from . import codec
 from .catalog import Catalog
 from .config import PoolConfig
 from .errors import ShoalError, StoreError

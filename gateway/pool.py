@@ -40,7 +40,7 @@ from . import catalog as cat
 from .catalog import Catalog, Inode, NewStripe, ShardLoc
 from .config import PoolConfig, spread_cap
 from .errors import (
-    CatalogError, InvalidArgument, IsADirectory, NoAttribute, NotFound, PoolUnavailable, QuorumError, ReadOnly,
+    CatalogError, InvalidArgument, IsADirectory, NoAttribute, PoolUnavailable, QuorumError, ReadOnly,
     ShoalError, StoreError, StripeLost,
 )
 from .ids import FileId, Ino, PoolId, StoreId

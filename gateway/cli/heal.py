@@ -15,6 +15,7 @@ import trio
 
 from .. import config
 from . import control_client
+from ._output import ProgressBar, size
 
 POLL_SECONDS = 0.5
 
@@ -53,43 +54,10 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 # ---------------------------------------------------------------- output
 
-def _size(n: float) -> str:
-    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
-        if abs(n) < 1024 or unit == "TiB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1024
-    return str(n)
-
-
-class Bar:
-    """A one-line progress bar on stderr, drawn only when stderr is a terminal."""
-
-    def __init__(self, stream=None, width: int = 30):
-        self.stream = stream or sys.stderr
-        self.tty = self.stream.isatty()
-        self.width = width
-        self.drawn = False
-
-    def show(self, ratio: float, text: str) -> None:
-        if not self.tty:
-            return
-        ratio = min(1.0, max(0.0, ratio))
-        full = int(ratio * self.width)
-        self.stream.write(f"\r[{'#' * full}{'-' * (self.width - full)}] {ratio * 100:5.1f}%  {text}\x1b[K")
-        self.stream.flush()
-        self.drawn = True
-
-    def close(self) -> None:
-        if self.drawn:
-            self.stream.write("\n")
-            self.stream.flush()
-            self.drawn = False
-
-
 class RepairProgress:
     """Turns repair statistics into bar updates: done = the largest queue seen minus what is left."""
 
-    def __init__(self, bar: Bar):
+    def __init__(self, bar: ProgressBar):
         self.bar, self.top = bar, 0
 
     def __call__(self, st: dict) -> None:
@@ -97,13 +65,13 @@ class RepairProgress:
         self.top = max(self.top, left)
         done = self.top - left
         eta = st.get("eta_seconds")
-        text = (f"{done}/{self.top} stripes, {_size(st.get('repaired_bytes', 0))} rebuilt, "
-                f"{_size(st.get('rate_bytes_per_second', 0))}/s" + (f", about {eta:.0f} s left" if eta else ""))
+        text = (f"{done}/{self.top} stripes, {size(st.get('repaired_bytes', 0))} rebuilt, "
+                f"{size(st.get('rate_bytes_per_second', 0))}/s" + (f", about {eta:.0f} s left" if eta else ""))
         self.bar.show(done / self.top if self.top else 1.0, text)
 
 
 def _repair_summary(st: dict) -> str:
-    line = f"repair: {st['repaired_shards']} shards ({_size(st['repaired_bytes'])}) rebuilt"
+    line = f"repair: {st['repaired_shards']} shards ({size(st['repaired_bytes'])}) rebuilt"
     left = st.get("queue_stripes", 0)
     if not left:
         return line + "; the queue is empty"
@@ -151,7 +119,7 @@ async def offline_repair(cfg, progress=None) -> dict:
 
 def cmd_repair(args) -> int:
     cfg = config.load(args.config)
-    bar = Bar()
+    bar = ProgressBar()
     show = RepairProgress(bar)
     try:
         st = control_client.try_request(cfg, "repair", kick=True)
@@ -184,7 +152,7 @@ async def offline_scrub(cfg, progress=None) -> dict:
 def _scrub_summary(rep: dict) -> str:
     errs = rep.get("errors") or {}
     found = ", ".join(f"{v} {k.replace('_', ' ')}" for k, v in errs.items() if v) or "no problems"
-    return (f"scrub: {rep.get('shards_checked', 0)} shards ({_size(rep.get('bytes_checked', 0))}) checked: {found}; "
+    return (f"scrub: {rep.get('shards_checked', 0)} shards ({size(rep.get('bytes_checked', 0))}) checked: {found}; "
             f"{rep.get('orphans_removed', 0)} orphan shards and {rep.get('temp_removed', 0)} temporary files removed"
             + (f"; {rep['skipped_shards']} shards on stores that are away were not checked" if rep.get("skipped_shards") else "")
             + ("; what was found is queued for repair (`shoal repair CONFIG`)" if any(
@@ -193,7 +161,7 @@ def _scrub_summary(rep: dict) -> str:
 
 def cmd_scrub(args) -> int:
     cfg = config.load(args.config)
-    bar = Bar()
+    bar = ProgressBar()
     t0 = time.time()
     try:
         st = control_client.try_request(cfg, "scrub", start=True)
@@ -269,7 +237,7 @@ def cmd_store(args) -> int:
     path = os.path.abspath(args.path)
     domain = getattr(args, "domain", None)
     wait = getattr(args, "wait", False)
-    bar = Bar()
+    bar = ProgressBar()
     show = RepairProgress(bar)
     try:
         same_fs = bool(getattr(args, "allow_same_filesystem", False))

@@ -8,6 +8,7 @@ import sys
 import trio
 
 from .. import admin, config
+from ._output import size
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -45,26 +46,16 @@ def fetch_status(cfg) -> dict:
     return trio.run(admin.offline_status, cfg)
 
 
-def _size(n: int | float | None) -> str:
-    if n is None:
-        return "-"
-    for unit in ("B", "KiB", "MiB", "GiB", "TiB"):
-        if abs(n) < 1024 or unit == "TiB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1024
-    return str(n)
-
-
 def format_status(st: dict) -> str:
     p = st["pool"]
     lines = [f"pool {p['name']}  k={p['k']} n={p['n']} w={p['w']}  "
              f"{'mounted' if p.get('mounted') else 'not mounted'}, "
              f"{'writable' if p['writable'] else 'READ-ONLY (fewer than w stores online)' if p['readable'] else 'UNREADABLE (fewer than k stores usable)'}",
-             f"  {p['files']} files, {_size(p['bytes'])}; usable free space {_size(p['usable_free_bytes'])}", "",
+             f"  {p['files']} files, {size(p['bytes'])}; usable free space {size(p['usable_free_bytes'])}", "",
              f"  {'store':<40} {'domain':<12} {'state':<9} {'free':>10} {'size':>10}"]
     for s in st["stores"]:
         seen = s["state"] in ("online", "full", "retiring")  # otherwise the space figures are from before it left
-        free, total = (_size(s["free_bytes"]), _size(s["total_bytes"])) if seen else ("-", "-")
+        free, total = (size(s["free_bytes"]), size(s["total_bytes"])) if seen else ("-", "-")
         lines.append(f"  {s['path']:<40} {s['domain']:<12} {s['state']:<9} {free:>10} {total:>10}")
         if s["state"] != "online" and s.get("reason"):
             lines.append(f"      {s['reason']}")
@@ -73,8 +64,8 @@ def format_status(st: dict) -> str:
     r = st.get("repair") or {}
     if r:
         eta = r.get("eta_seconds")
-        lines.append(f"  repair: {r.get('queued_stripes', 0)} stripes queued, {_size(r.get('repaired_bytes', 0))} regenerated, "
-                     f"{_size(r.get('rate_bytes_per_second', 0))}/s" + (f", about {eta:.0f} s left" if eta else ""))
+        lines.append(f"  repair: {r.get('queued_stripes', 0)} stripes queued, {size(r.get('repaired_bytes', 0))} regenerated, "
+                     f"{size(r.get('rate_bytes_per_second', 0))}/s" + (f", about {eta:.0f} s left" if eta else ""))
     m = st.get("catalog") or {}
     if m:
         age = m.get("mirror_age_seconds")

@@ -11,6 +11,7 @@ from dataclasses import asdict
 import trio
 
 from .. import config, recovery
+from ._output import ProgressBar
 
 EXIT_INCOMPLETE = 3  # the tool ran, but something could not be recovered, exported or fixed
 
@@ -40,41 +41,6 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument("--repair", action="store_true", help="fix what is safe to fix (the pool must not be mounted)")
     p.add_argument("--json", action="store_true", help="print the report as one JSON object")
     p.set_defaults(func=cmd_check)
-
-
-class ProgressBar:
-    """A one-line bar on stderr, drawn only when stderr is a terminal."""
-
-    def __init__(self, stream=None, width: int = 30):
-        self.stream = stream or sys.stderr
-        self.on = self.stream.isatty()
-        self.width = width
-        self.phase = None
-        self._last = 0.0
-
-    def __call__(self, phase: str, done: int, total: int | None) -> None:
-        if not self.on:
-            return
-        now = time.monotonic()
-        final = total is not None and done >= total
-        if phase == self.phase and not final and now - self._last < 0.1:
-            return
-        if phase != self.phase and self.phase is not None:
-            self.stream.write("\n")
-        self.phase, self._last = phase, now
-        if total:
-            frac = min(1.0, done / total)
-            bar = "#" * int(frac * self.width)
-            self.stream.write(f"\r{phase:<24} [{bar:<{self.width}}] {frac:6.1%}")
-        else:
-            self.stream.write(f"\r{phase:<24} ...")
-        self.stream.flush()
-
-    def close(self) -> None:
-        if self.on and self.phase is not None:
-            self.stream.write("\n")
-            self.stream.flush()
-            self.phase = None
 
 
 def _dump(obj) -> None:
