@@ -547,3 +547,29 @@ def requirement(reason: str | None) -> pytest.MarkDecorator:
 
 requires_fuse = requirement(fuse_available())
 requires_root = requirement(root_available())
+
+
+# -- small helpers the mount tests share ------------------------------------------------
+
+def wait_for(pred, what: str, timeout: float = 30.0, step: float = 0.1):
+    """Poll until pred() is truthy; its value. A failure says what never happened."""
+    deadline = time.monotonic() + timeout
+    while True:
+        v = pred()
+        if v:
+            return v
+        if time.monotonic() > deadline:
+            pytest.fail(f"{what}: not so after {timeout} s (last value {v!r})")
+        time.sleep(step)
+
+
+def drop_kernel_caches() -> None:
+    """Make the next read through a mount reach its daemon, not the page cache."""
+    os.sync()
+    Path("/proc/sys/vm/drop_caches").write_text("3\n")
+
+
+def sha256sum(path: str | os.PathLike) -> str:
+    """The digest as the sha256sum tool (the reference) computes it."""
+    r = subprocess.run(["sha256sum", "-b", os.fspath(path)], capture_output=True, text=True, check=True)
+    return r.stdout.split()[0]

@@ -30,7 +30,7 @@ import pytest
 import mounting
 from gateway import config as gconfig
 from gateway.cli import control_client
-from mounting import BoundStore, MountProcess, shoal_argv
+from mounting import BoundStore, MountProcess, drop_kernel_caches, sha256sum, shoal_argv, wait_for
 
 pytestmark = [pytest.mark.fuse, mounting.requires_fuse, mounting.requires_root]
 
@@ -72,29 +72,6 @@ def run(*argv: object, ok: tuple[int, ...] = (0,), timeout: float = 120) -> subp
 def shoal(*args: object, ok: tuple[int, ...] = (0,), timeout: float = 120) -> subprocess.CompletedProcess:
     """The `shoal` CLI of this checkout."""
     return run(*shoal_argv(*map(str, args)), ok=ok, timeout=timeout)
-
-
-def wait_for(pred, what: str, timeout: float = 30.0, step: float = 0.1):
-    """Poll until pred() is truthy; its value. A failure says what never happened."""
-    deadline = time.monotonic() + timeout
-    while True:
-        v = pred()
-        if v:
-            return v
-        if time.monotonic() > deadline:
-            pytest.fail(f"{what}: not so after {timeout} s (last value {v!r})")
-        time.sleep(step)
-
-
-def drop_kernel_caches() -> None:
-    """Make the next read through the mount reach the daemon, not the page cache."""
-    os.sync()
-    Path("/proc/sys/vm/drop_caches").write_text("3\n")
-
-
-def sha256sum(path: Path) -> str:
-    """The digest as the sha256sum tool computes it."""
-    return run("sha256sum", "-b", path).stdout.split()[0]
 
 
 # -- instrument data ---------------------------------------------------------------------------

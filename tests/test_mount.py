@@ -26,7 +26,6 @@ import stat
 import subprocess
 import sys
 import threading
-import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -34,7 +33,7 @@ from typing import Callable
 import pytest
 
 from mounting import (
-    BoundStore, MountProcess, mount_tmpfs, requires_fuse, requires_root, shoal_argv, unmount_all,
+    BoundStore, MountProcess, mount_tmpfs, requires_fuse, requires_root, sha256sum, shoal_argv, unmount_all, wait_for,
     write_pool_config,
 )
 
@@ -54,11 +53,6 @@ def run(*argv: object, ok: tuple[int, ...] = (0,), timeout: float = 120, **kw) -
                        capture_output=True, text=True, timeout=timeout, cwd=kw.pop("cwd", REPO), **kw)
     assert r.returncode in ok, f"{argv} exited {r.returncode}:\n{r.stdout[-2000:]}\n{r.stderr[-2000:]}"
     return r
-
-
-def sha256sum(path: Path) -> str:
-    """The digest as the sha256sum tool computes it."""
-    return run("sha256sum", "-b", path).stdout.split()[0]
 
 
 def instrument_bytes(rng: random.Random, size: int) -> bytes:
@@ -127,12 +121,6 @@ def tree_view(root: Path) -> dict[bytes, dict]:
     return out
 
 
-def drop_kernel_caches() -> None:
-    """Make the next read reach the filesystem rather than the page cache."""
-    os.sync()
-    Path("/proc/sys/vm/drop_caches").write_text("3\n")
-
-
 def shoal_init(cfg: Path) -> None:
     run(*shoal_argv("init", cfg))
 
@@ -152,18 +140,6 @@ def shard_bytes(paths: list[Path]) -> int:
         except FileNotFoundError:
             pass  # deleted by the daemon's garbage collection meanwhile
     return total
-
-
-def wait_for(pred: Callable[[], object], what: str, timeout: float = 30.0, step: float = 0.1):
-    """Poll until pred() is truthy; its value. A failure says what never happened."""
-    deadline = time.monotonic() + timeout
-    while True:
-        v = pred()
-        if v:
-            return v
-        if time.monotonic() > deadline:
-            pytest.fail(f"{what}: not so after {timeout} s (last value {v!r})")
-        time.sleep(step)
 
 
 def shard_files(stores: list[Path]) -> list[Path]:

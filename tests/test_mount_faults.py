@@ -25,10 +25,11 @@ import pytest
 from gateway import errors as E
 from gateway.fs import ShoalFS
 from mounting import (
-    access_errno, clear_stale_mount, is_mounted, mount_tmpfs, requires_fuse, requires_root, shoal_argv, umount,
+    access_errno, clear_stale_mount, drop_kernel_caches, is_mounted, mount_tmpfs, requires_fuse, requires_root, sha256sum,
+    shoal_argv, umount, wait_for,
 )
 from test_mount import (  # noqa: F401  (make_pool is a fixture)
-    MiB, STRIPE, drop_kernel_caches, instrument_bytes, make_pool, run, sha256sum, shard_files, wait_for,
+    MiB, STRIPE, instrument_bytes, make_pool, run, shard_files,
 )
 
 
