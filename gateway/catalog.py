@@ -320,12 +320,19 @@ class Catalog:
         return node
 
     def create(self, parent: int, name: bytes, *, mode: int, uid: int, gid: int,
-               target: bytes | None = None, rdev: int = 0) -> Inode:
-        """Create a file, directory, symlink or special file. Raises Exists."""
+               target: bytes | None = None, rdev: int = 0, file_id: str | None = None,
+               mtime_ns: int | None = None) -> Inode:
+        """Create a file, directory, symlink or special file. Raises Exists.
+        A regular file gets a new file id unless one is given (recovery
+        re-adopting a file the catalog lost)."""
         check_name(name)
         t = now_ns()
+        m = mtime_ns if mtime_ns is not None else t
         is_dir = stat.S_ISDIR(mode)
-        file_id = uuid.uuid4().hex if stat.S_ISREG(mode) else None
+        if stat.S_ISREG(mode):
+            file_id = file_id or uuid.uuid4().hex
+        elif file_id is not None:
+            raise InvalidArgument("only a regular file has a file id")
         with self._tx() as db:
             self._require_dir(parent)
             if db.execute("SELECT 1 FROM entries WHERE parent=? AND name=?", (parent, name)).fetchone():
@@ -333,7 +340,7 @@ class Catalog:
             cur = db.execute(
                 "INSERT INTO inodes(mode, uid, gid, size, nlink, atime_ns, mtime_ns, ctime_ns, rdev, file_id, target) "
                 "VALUES(?,?,?,?,?,?,?,?,?,?,?)",
-                (mode, uid, gid, len(target) if target is not None else 0, 2 if is_dir else 1, t, t, t, rdev, file_id, target))
+                (mode, uid, gid, len(target) if target is not None else 0, 2 if is_dir else 1, m, m, t, rdev, file_id, target))
             ino = cur.lastrowid
             db.execute("INSERT INTO entries(parent, name, ino) VALUES(?,?,?)", (parent, name, ino))
             db.execute("UPDATE inodes SET mtime_ns=?, ctime_ns=?, nlink=nlink+? WHERE ino=?", (t, t, 1 if is_dir else 0, parent))
@@ -812,23 +819,10 @@ class Catalog:
 
     def adopt_file(self, parent: int, name: bytes, *, file_id: str, mode: int, uid: int = 0, gid: int = 0,
                    mtime_ns: int | None = None) -> Inode:
-        """Create a regular file that takes an existing file id (recovery puts
-        files the catalog lost back under lost+found). Raises Exists."""
-        check_name(name)
-        t = now_ns()
-        m = mtime_ns if mtime_ns is not None else t
-        with self._tx() as db:
-            self._require_dir(parent)
-            if db.execute("SELECT 1 FROM entries WHERE parent=? AND name=?", (parent, name)).fetchone():
-                raise Exists(name.decode(errors="replace"))
-            cur = db.execute(
-                "INSERT INTO inodes(mode, uid, gid, size, nlink, atime_ns, mtime_ns, ctime_ns, rdev, file_id, target) "
-                "VALUES(?,?,?,0,1,?,?,?,0,?,NULL)", (stat.S_IFREG | (mode & 0o7777), uid, gid, m, m, t, file_id))
-            ino = cur.lastrowid
-            db.execute("INSERT INTO entries(parent, name, ino) VALUES(?,?,?)", (parent, name, ino))
-            db.execute("UPDATE inodes SET mtime_ns=?, ctime_ns=? WHERE ino=?", (t, t, parent))
-            self._bump(db)
-        return self.get_inode(ino)
+        """A regular file that takes an existing file id (recovery puts files
+        the catalog lost back under lost+found). Raises Exists."""
+        return self.create(parent, name, mode=stat.S_IFREG | (mode & 0o7777), uid=uid, gid=gid,
+                           file_id=file_id, mtime_ns=mtime_ns)
 
     def raise_next_version(self, at_least: int) -> None:
         """Stripe versions below at_least are taken (found on the stores)."""
