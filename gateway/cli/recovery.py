@@ -97,18 +97,27 @@ def format_recover(r: recovery.RecoverReport) -> str:
     return "\n".join(lines)
 
 
-def cmd_recover(args) -> int:
-    cfg = config.load(args.config)
+def _with_bar(run):
+    """run(progress) under trio, with a progress bar on a terminal."""
     bar = ProgressBar()
     try:
-        report = trio.run(lambda: recovery.recover(cfg, force=args.force, generation=args.generation, progress=bar))
+        return trio.run(run, bar)
     finally:
         bar.close()
+
+
+def _report(args, report, text) -> int:
     if args.json:
         _dump(asdict(report) | {"complete": report.complete})
     else:
-        print(format_recover(report))
+        print(text(report))
     return 0 if report.complete else EXIT_INCOMPLETE
+
+
+def cmd_recover(args) -> int:
+    cfg = config.load(args.config)
+    report = _with_bar(lambda bar: recovery.recover(cfg, force=args.force, generation=args.generation, progress=bar))
+    return _report(args, report, format_recover)
 
 
 def format_export(r: recovery.ExportReport) -> str:
@@ -131,17 +140,9 @@ def format_export(r: recovery.ExportReport) -> str:
 
 def cmd_export(args) -> int:
     cfg = config.load(args.config)
-    bar = ProgressBar()
-    try:
-        report = trio.run(lambda: recovery.export(cfg, args.pool_path, args.dest, from_mirror=args.from_mirror,
-                                                  force=args.force, progress=bar))
-    finally:
-        bar.close()
-    if args.json:
-        _dump(asdict(report) | {"complete": report.complete})
-    else:
-        print(format_export(report))
-    return 0 if report.complete else EXIT_INCOMPLETE
+    report = _with_bar(lambda bar: recovery.export(cfg, args.pool_path, args.dest, from_mirror=args.from_mirror,
+                                                   force=args.force, progress=bar))
+    return _report(args, report, format_export)
 
 
 def format_check(r: recovery.CheckReport) -> str:
@@ -166,11 +167,7 @@ def format_check(r: recovery.CheckReport) -> str:
 
 def cmd_check(args) -> int:
     cfg = config.load(args.config)
-    bar = ProgressBar()
-    try:
-        report = trio.run(lambda: recovery.check(cfg, repair=args.repair, progress=bar))
-    finally:
-        bar.close()
+    report = _with_bar(lambda bar: recovery.check(cfg, repair=args.repair, progress=bar))
     if args.json:
         _dump({"findings": [asdict(f) for f in report.findings], "counts": report.counts(), "notes": report.notes,
                "stripes": report.stripes, "shards_checked": report.shards_checked, "repair": report.repair,
