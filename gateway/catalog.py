@@ -563,10 +563,14 @@ class Catalog:
     def add_intents(self, file_id: str, items: Iterable[tuple[int, int, str]]) -> None:
         """Record stripes about to be written: (idx, version, placement as
         comma-separated store ids). No fsync (see the module docstring)."""
+        self.add_intent_rows([(file_id, i, v, p) for i, v, p in items])
+
+    def add_intent_rows(self, rows: Iterable[tuple[str, int, int, str]]) -> None:
+        """add_intents for stripes of several files: (file_id, idx, version, placement)."""
         t = time.time()
         with self._tx() as db:
             db.executemany("INSERT OR REPLACE INTO intents(file_id, idx, version, placement, since) VALUES(?,?,?,?,?)",
-                           [(file_id, i, v, p, t) for i, v, p in items])
+                           [(*row, t) for row in rows])
 
     def intents(self) -> list[tuple[str, int, int, list[str]]]:
         return [(r[0], r[1], r[2], [s for s in r[3].split(",") if s])
@@ -656,9 +660,6 @@ class Catalog:
 
     def repair_queue_length(self) -> int:
         return self.db.execute("SELECT COUNT(*) FROM repair_queue").fetchone()[0]
-
-    def dequeue_repair(self, ino: int, idx: int) -> None:
-        self.db.execute("DELETE FROM repair_queue WHERE ino=? AND idx=?", (ino, idx))
 
     # -- garbage ------------------------------------------------------------
     def add_garbage(self, items: Iterable[tuple[str, str, int, int, int]]) -> None:
@@ -911,28 +912,54 @@ class Catalog:
                              "SELECT DISTINCT ino, idx, ?, ? FROM shards WHERE store_id IS NULL", (reason, time.time()))
             return cur.rowcount
 
-    def record_repair(self, ino: int, idx: int, version: int, file_id: str,
-                      moves: Sequence[tuple[int, str, str | None]]) -> int:
-        """Point regenerated shards at the stores that now hold them: (shard,
-        store_id, old store_id whose copy becomes garbage, or None). Applied
+    def repair_view(self, keys: Sequence[tuple[int, int]]) -> dict[tuple[int, int], tuple[str, StripeRecord]]:
+        """For repair, read in one snapshot: the file id and current record of
+        each (ino, idx) that still exists."""
+        out: dict[tuple[int, int], tuple[str, StripeRecord]] = {}
+        self.db.execute("BEGIN")
+        try:
+            for ino, idx in keys:
+                row = self.db.execute("SELECT file_id FROM inodes WHERE ino=?", (ino,)).fetchone()
+                rec = self.stripe(ino, idx) if row is not None and row[0] is not None else None
+                if rec is not None:
+                    out[(ino, idx)] = (row[0], rec)
+        finally:
+            self.db.execute("COMMIT")
+        return out
+
+    def record_repairs(self, items: Sequence[tuple[int, int, int, str, Sequence[tuple[int, str, str | None]], bool]],
+                       intents: Iterable[tuple[str, int, int]] = ()) -> list[int]:
+        """Record what repair did to several stripes, in one transaction.
+
+        Each item is (ino, idx, version, file_id, moves, dequeue). moves point
+        regenerated shards at the stores that now hold them: (shard,
+        store_id, old store_id whose copy becomes garbage, or None), applied
         only while the stripe's version is still `version`; a regenerated
         shard of a version replaced meanwhile goes to the garbage list
-        instead. Returns the number applied."""
+        instead. With dequeue, the stripe leaves the repair queue if every
+        move applied. The given write intents are dropped. Returns the number
+        of moves applied per item."""
         t = time.time()
-        applied = 0
+        applied_per_item = []
         with self._tx() as db:
-            for shard, store_id, old in moves:
-                cur = db.execute("UPDATE shards SET store_id=?, state='ok' WHERE ino=? AND idx=? AND shard=? AND version=?",
-                                 (store_id, ino, idx, shard, version))
-                if cur.rowcount:
-                    applied += 1
-                    dead = old if old is not None and old != store_id else None
-                else:
-                    dead = store_id
-                if dead is not None:
-                    db.execute("INSERT INTO garbage(store_id, file_id, idx, version, shard, since) VALUES(?,?,?,?,?,?)",
-                               (dead, file_id, idx, version, shard, t))
-        return applied
+            for ino, idx, version, file_id, moves, dequeue in items:
+                applied = 0
+                for shard, store_id, old in moves:
+                    cur = db.execute("UPDATE shards SET store_id=?, state='ok' WHERE ino=? AND idx=? AND shard=? AND version=?",
+                                     (store_id, ino, idx, shard, version))
+                    if cur.rowcount:
+                        applied += 1
+                        dead = old if old is not None and old != store_id else None
+                    else:
+                        dead = store_id
+                    if dead is not None:
+                        db.execute("INSERT INTO garbage(store_id, file_id, idx, version, shard, since) VALUES(?,?,?,?,?,?)",
+                                   (dead, file_id, idx, version, shard, t))
+                if dequeue and applied == len(moves):
+                    db.execute("DELETE FROM repair_queue WHERE ino=? AND idx=?", (ino, idx))
+                applied_per_item.append(applied)
+            db.executemany("DELETE FROM intents WHERE file_id=? AND idx=? AND version=?", list(intents))
+        return applied_per_item
 
     def stripe_page(self, after: tuple[int, int], limit: int) -> list[tuple[FileId | None, StripeRecord]]:
         """Up to `limit` current stripes after (ino, idx), in (ino, idx) order,

@@ -24,7 +24,7 @@ from __future__ import annotations
 import functools
 import re
 import struct
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, fields
 from typing import Union
 
@@ -150,6 +150,49 @@ def encode_pieces(pieces: Sequence[Buffer], k: int, n: int) -> list[Buffer]:
     if n > k:
         shards.extend(_encoder(k, n).encode(list(views), list(range(k, n))))
     return shards
+
+
+def rebuild(shards: Mapping[int, Buffer], k: int, n: int, wanted: Iterable[int]) -> dict[int, Buffer]:
+    """The payloads of the ``wanted`` shard indices, from at least k verified
+    payloads of one stripe (``shards``: index -> payload, all one length).
+
+    Only what is wanted is computed: a wanted data shard that is missing
+    costs one zfec decode (which computes the missing data shards only); a
+    wanted parity shard costs one encode of that parity shard alone, from
+    the data shards. Given shards that are wanted come back as they are.
+    The payloads are assumed verified, as for decode.
+
+    Raises ValueError on a bad index or length, or fewer than k shards.
+    """
+    _check_kn(k, n)
+    wanted = sorted(set(wanted))
+    if any(not isinstance(i, int) or not 0 <= i < n for i in wanted):
+        raise ValueError(f"wanted shard indices {wanted} are outside 0..{n - 1}")
+    views: dict[int, memoryview] = {}
+    for i, payload in shards.items():
+        if not isinstance(i, int) or not 0 <= i < n:
+            raise ValueError(f"shard index {i!r} is outside 0..{n - 1}")
+        views[i] = _bytes_view(payload)
+    if len(views) < k:
+        raise ValueError(f"{len(views)} shards cannot rebuild a stripe that needs k={k}")
+    if len({len(v) for v in views.values()}) != 1 or not len(next(iter(views.values()))):
+        raise ValueError("shards of one stripe must have one non-zero length")
+    data: list[Buffer]
+    if all(i in views for i in range(k)):
+        data = [views[i] for i in range(k)]
+    elif all(i in views for i in wanted):
+        data = []
+    else:
+        present = [i for i in range(k) if i in views]
+        present += [i for i in range(k, n) if i in views][: k - len(present)]
+        # zfec reorders the lists it is given in place, so they are fresh here.
+        data = _decoder(k, n).decode([views[i] for i in present], list(present))
+    out: dict[int, Buffer] = {i: views[i] for i in wanted if i in views}
+    out.update((i, data[i]) for i in wanted if i < k and i not in out)
+    parity = [i for i in wanted if i >= k and i not in out]
+    if parity:
+        out.update(zip(parity, _encoder(k, n).encode(list(data), parity)))
+    return out
 
 
 def decode(shards: Mapping[int, Buffer], k: int, n: int, stripe_length: int) -> bytes:

@@ -428,16 +428,20 @@ def control_handlers(pool: Pool, repairer: Repairer, scrubber=None) -> dict:
     """The control-socket ops of this layer, for the daemon: op name -> async
     handler taking the request's args as keywords and returning plain data.
 
-    repair(kick=True): wake the repair worker (unless kick is false); its statistics.
+    repair(kick=True, wait=0): wake the repair worker (unless kick is false);
+    with wait, first wait up to that many seconds (at most 10) for it to
+    settle (nothing queued that it could do now); its statistics.
     scrub(start=True): start a pass unless one runs; the scrubber's statistics
     (only when a scrubber is given).
     store_add(path, domain=None), store_replace(path, allow_same_filesystem=False),
     store_retire(path), store_fail(path): StoreChange.as_dict(); the repair
     worker does the rebuilding or draining in the background.
     """
-    async def repair(kick: bool = True, **_) -> dict:
+    async def repair(kick: bool = True, wait: float = 0, **_) -> dict:
         if kick:
             repairer.kick()
+        if wait > 0:
+            await repairer.wait_settled(min(float(wait), 10.0))
         return repairer.statistics()
 
     async def scrub(start: bool = True, **_) -> dict:

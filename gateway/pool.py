@@ -78,6 +78,11 @@ class ByteBudget:
         while not self.fits(n):
             await self._lot.park()
 
+    async def wait_room(self, n: int, limit: int) -> None:
+        """Wait until n more bytes keep the budget within limit (or it is idle)."""
+        while self.used and self.used + n > limit:
+            await self._lot.park()
+
     def take(self, n: int) -> None:
         self.used += n
         self.peak = max(self.peak, self.used)
@@ -308,6 +313,7 @@ class Pool:
         self._repair_news: list[tuple[int, int, str]] = []
         self._state_news: list[tuple] = []
         self._garbage_news: list[tuple] = []
+        self._flush_lock = trio.Lock()
         self._fetching: dict[tuple, trio.Event] = {}
         self._xattr_cache: dict[int, dict[bytes, bytes]] = {}
         self._gc_wake = trio.Event()
@@ -332,9 +338,14 @@ class Pool:
         return sum(1 for s in self.slots.values() if s.readable)
 
     def _bad_shard(self, ref: StripeRef, shard: int, why: str) -> None:
-        """Every read that meets a missing or corrupt shard feeds the repair queue."""
+        """Every read that meets a missing or corrupt shard feeds the repair
+        queue, and marks the shard's row, so that repair reads it again
+        (repair trusts rows that say 'ok'). A store that failed the read is
+        the health monitor's business: its rows stay as they are."""
         if ref.ino is not None:
             self._repair_news.append((ref.ino, ref.idx, f"read-{why}"))
+            if why in ("missing", "corrupt"):
+                self._state_news.append((ref.ino, ref.idx, ref.version, shard, None, why))
             self._gc_wake.set()
 
     async def _next_version(self) -> int:
@@ -1033,16 +1044,20 @@ class Pool:
                 await self.collect_garbage()
 
     async def flush_news(self) -> None:
-        states, self._state_news = self._state_news, []
-        repairs, self._repair_news = self._repair_news, []
-        garbage, self._garbage_news = self._garbage_news, []
-        if states:
-            await self.db(self.catalog.set_shard_states, states)
-        if repairs:
-            await self.db(self.catalog.queue_repair, repairs)
-        if garbage:
-            await self.db(self.catalog.add_garbage, garbage)
-            await self.db(self.catalog.drop_intents, [(f, i, v) for _, f, i, v, _ in garbage])
+        """Record the news gathered so far. One flush at a time: a caller
+        returns only once news from before its call is in the catalog, even
+        if the background task had taken it first."""
+        async with self._flush_lock:
+            states, self._state_news = self._state_news, []
+            repairs, self._repair_news = self._repair_news, []
+            garbage, self._garbage_news = self._garbage_news, []
+            if states:
+                await self.db(self.catalog.set_shard_states, states)
+            if repairs:
+                await self.db(self.catalog.queue_repair, repairs)
+            if garbage:
+                await self.db(self.catalog.add_garbage, garbage)
+                await self.db(self.catalog.drop_intents, [(f, i, v) for _, f, i, v, _ in garbage])
 
     async def collect_garbage(self) -> int:
         """Delete shards on the garbage list from stores that can be reached,

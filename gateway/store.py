@@ -47,7 +47,7 @@ from typing import Any, TypeVar
 import trio
 
 from .errors import (
-    ShardCorrupt, ShardError, ShardMissing, ShoalError, StoreForeign, StoreFull, StoreStalled,
+    ShardCorrupt, ShardError, ShardMissing, ShoalError, StoreError, StoreForeign, StoreFull, StoreStalled,
     StoreUnavailable, StoreUnlabelled,
 )
 from .stats import Histogram, HistogramSnapshot
@@ -588,6 +588,73 @@ class Store:
         self._n["gets"] += 1
         self._n["bytes_read"] += size
         return out
+
+    async def get_many_checked(self, names: Sequence[ShardName], *, check: Callable[[int, bytes], T],
+                               max_bytes: int | None = None) -> list[T | ShoalError]:
+        """get_checked() for several shards in one worker-thread call, under
+        one deadline (keep batches small enough to finish within it). The
+        result for each name, in order, is check(position, data) or the
+        error that shard met: ShardMissing, ShardCorrupt, or a StoreError.
+        Raises StoreStalled past the deadline (for the whole batch)."""
+        rels = [n.relpath() for n in names]
+
+        def read_all() -> list[tuple[float, int, Any]]:
+            out = []
+            for pos, rel in enumerate(rels):
+                start, size = time.monotonic(), -1  # -1: nothing read
+                try:
+                    data = self._read_sync(rel, None, max_bytes)
+                    size = len(data)
+                    out.append((time.monotonic() - start, size, check(pos, data)))
+                except ShardError as e:
+                    out.append((time.monotonic() - start, size, e))
+                except OSError as e:
+                    out.append((time.monotonic() - start, size, _map_os_error(self._root, "get", e, missing=ShardMissing)))
+            return out
+
+        results = await self.run_blocking("get", read_all)
+        values: list[T | ShoalError] = []
+        for took, size, value in results:
+            if size >= 0:  # counted as get() counts: a read that returned bytes
+                self._read_hist.observe(took)
+                self._n["gets"] += 1
+                self._n["bytes_read"] += size
+            if isinstance(value, ShardMissing):
+                self._n["get_missing"] += 1
+            elif isinstance(value, ShoalError) and not isinstance(value, ShardError):
+                self._n["get_errors"] += 1
+            values.append(value)
+        return values
+
+    async def put_many(self, items: Sequence[tuple[ShardName, Sequence[bytes | memoryview]]]) -> list[StoreError | None]:
+        """put() for several shards in one worker-thread call, under one
+        deadline: each is written atomically and durably as put() does. The
+        result for each, in order, is None (written) or its StoreError.
+        Raises StoreStalled past the deadline (for the whole batch)."""
+        def put_all() -> list[tuple[float, int, StoreError | None]]:
+            out = []
+            for name, buffers in items:
+                start = time.monotonic()
+                try:
+                    size = self._put_sync(name, buffers)
+                    out.append((time.monotonic() - start, size, None))
+                except StoreError as e:
+                    out.append((time.monotonic() - start, 0, e))
+                except OSError as e:
+                    out.append((time.monotonic() - start, 0, _map_os_error(self._root, "put", e, missing=StoreUnavailable)))
+            return out
+
+        results = await self.run_blocking("put", put_all)
+        errors: list[StoreError | None] = []
+        for took, size, err in results:
+            if err is None:
+                self._write_hist.observe(took)
+                self._n["puts"] += 1
+                self._n["bytes_written"] += size
+            else:
+                self._n["put_errors"] += 1
+            errors.append(err)
+        return errors
 
     async def get_prefix(self, name: ShardName, size: int) -> bytes:
         """The first `size` bytes (fewer if the file is shorter), for header scans."""

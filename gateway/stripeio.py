@@ -18,7 +18,7 @@ from typing import Callable
 import trio
 
 from . import codec
-from .errors import ShardCorrupt, ShardMissing, ShoalError, StoreError, StripeLost
+from .errors import ShardCorrupt, ShardMissing, ShoalError, StoreError, StoreUnavailable, StripeLost
 from .ids import FileId, PoolId, StoreId
 from .store import ShardName, Store
 
@@ -75,7 +75,7 @@ class IOStats:
     stripes_lost: int = 0
 
 
-BadShard = Callable[[StripeRef, int, str], None]  # (stripe, shard index, reason)
+BadShard = Callable[[StripeRef, int, str], None]  # (stripe, shard index, "missing" | "corrupt" | "unreachable")
 
 
 class StripeIO:
@@ -132,6 +132,29 @@ class StripeIO:
         limit = codec.shard_length(ref.coded_length, ref.k) + 8192
         return await slot.store.get_checked(name, max_bytes=limit, check=lambda blob: self._verify(blob, ref, shard))
 
+    async def fetch_shards(self, store_id: StoreId, wants: list[tuple[StripeRef, int]]) -> list:
+        """Verified payloads of several shards on one store, in one worker-thread
+        call: for each (stripe, shard index), in order, the payload or the
+        ShoalError it met (ShardMissing, ShardCorrupt, a StoreError). Raises
+        StoreError when the store is not readable or stalls."""
+        slot = self.slots.get(store_id)
+        if slot is None or not slot.readable:
+            raise StoreUnavailable(str(slot.path if slot else store_id), f"not readable ({slot.state if slot else 'unknown'})")
+        names = [ShardName(file_id=ref.file_id, stripe_index=ref.idx, version=ref.version, shard_index=i)
+                 for ref, i in wants]
+        limit = max(codec.shard_length(ref.coded_length, ref.k) for ref, _ in wants) + 8192
+        return await slot.store.get_many_checked(
+            names, max_bytes=limit, check=lambda pos, blob: self._verify(blob, wants[pos][0], wants[pos][1]))
+
+    async def put_shards(self, store_id: StoreId, items: list[tuple[ShardName, list]]) -> list:
+        """Put several shard files on one store in one worker-thread call; for
+        each, in order, None or its StoreError. Raises StoreError when the
+        store is not writable or stalls."""
+        slot = self.slots.get(store_id)
+        if slot is None or not slot.writable:
+            raise StoreError(str(slot.path if slot else store_id), f"not writable ({slot.state if slot else 'unknown'})")
+        return await slot.store.put_many(items)
+
     def _order(self, ref: StripeRef) -> list[tuple[int, StoreId]]:
         """Data shards before parity; shards believed good before doubtful ones."""
         def key(item):
@@ -150,9 +173,9 @@ class StripeIO:
         async def one(shard: int, sid: StoreId, send: trio.MemorySendChannel) -> None:
             try:
                 payload = await self.fetch_shard(ref, shard, sid)
-                await send.send((shard, payload, None))
+                await send.send((shard, sid, payload, None))
             except (ShoalError, OSError) as e:
-                await send.send((shard, None, e))
+                await send.send((shard, sid, None, e))
 
         send, recv = trio.open_memory_channel(len(order) + 1)
         async with trio.open_nursery() as nursery:
@@ -162,7 +185,7 @@ class StripeIO:
                 pos += 1
                 running += 1
             while running:
-                shard, payload, err = await recv.receive()
+                shard, sid, payload, err = await recv.receive()
                 running -= 1
                 if payload is not None:
                     good[shard] = payload
@@ -170,7 +193,13 @@ class StripeIO:
                         nursery.cancel_scope.cancel()
                         break
                     continue
-                kind = "corrupt" if isinstance(err, ShardCorrupt) else "missing"
+                slot = self.slots.get(sid)
+                if isinstance(err, ShardCorrupt):
+                    kind = "corrupt"
+                elif isinstance(err, ShardMissing) and slot is not None and slot.readable:
+                    kind = "missing"
+                else:
+                    kind = "unreachable"  # the store, not the shard
                 if kind == "corrupt":
                     self.stats.checksum_failures += 1
                 else:

@@ -40,7 +40,7 @@ from typing import Any
 
 import trio
 
-from gateway.errors import StoreFull, StoreUnavailable
+from gateway.errors import ShoalError, StoreError, StoreFull, StoreStalled, StoreUnavailable
 from gateway.store import FileOps, ShardName, Store
 
 WRITE_OPS = ("put", "put_file", "copy_file_in")
@@ -290,6 +290,32 @@ class FaultyStore:
         """Through get(), so read faults apply; the check runs in a worker thread."""
         data = await self.get(name, max_bytes=max_bytes)
         return await trio.to_thread.run_sync(check, data)
+
+    async def get_many_checked(self, names, *, check, max_bytes: int | None = None):
+        """One get() per name, so read faults apply to each; errors come back in place."""
+        out = []
+        for pos, name in enumerate(names):
+            try:
+                data = await self.get(name, max_bytes=max_bytes)
+                out.append(await trio.to_thread.run_sync(check, pos, data))
+            except StoreStalled:
+                raise
+            except ShoalError as e:
+                out.append(e)
+        return out
+
+    async def put_many(self, items):
+        """One put() per item, so write faults apply to each; errors come back in place."""
+        out = []
+        for name, buffers in items:
+            try:
+                await self.put(name, buffers)
+                out.append(None)
+            except StoreStalled:
+                raise
+            except StoreError as e:
+                out.append(e)
+        return out
 
     async def get_prefix(self, name: ShardName, size: int) -> bytes:
         action = await self._pre("get_prefix")

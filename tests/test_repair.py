@@ -181,6 +181,40 @@ async def test_wiped_store_is_rebuilt_onto_its_replacement(store_dirs, pool_conf
         await replace_store(cfg, paths[3])
 
 
+async def test_shard_a_read_found_corrupt_is_rewritten_from_k_others(store_dirs, pool_config):
+    # A read marks the bad shard's row, so repair reads it again; of the
+    # shards whose rows say 'ok' it reads only k (data shards first).
+    paths = store_dirs(6)
+    cfg = await init(pool_config(4, 6, stores=paths, stripe_size=STRIPE, extra=QUIET))
+    async with open_pool(cfg) as pool:
+        files = await write_files(pool, 3, seed=21)
+        stripes = await all_stripes(pool)
+        victims = []
+        for _, rec in stripes:  # data shard 1 of every stripe, flipped on disk
+            fid = (await pool.getattr(rec.ino)).file_id
+            loc = next(s for s in rec.shards if s.shard == 1)
+            p = Path(pool.slots[loc.store_id].path) / ShardName(fid, rec.idx, rec.version, 1).relpath()
+            blob = bytearray(p.read_bytes())
+            blob[-1] ^= 0x01
+            p.write_bytes(bytes(blob))
+            victims.append((rec.ino, rec.idx, p, bytes(blob)))
+        await assert_files(pool, files)  # right bytes: decoded around the bad shards
+        await pool.flush_news()
+        for ino, idx, _, _ in victims:
+            row = next(s for s in (await pool.db(pool.catalog.stripe, ino, idx)).shards if s.shard == 1)
+            assert row.state == "corrupt"
+        assert await pool.db(pool.catalog.repair_queue_length) == len(victims)
+        rep = Repairer(pool, cfg)
+        stats = await rep.run_until_empty()
+        assert stats["repaired_shards"] == len(victims) and stats["queue_stripes"] == 0
+        # Each stripe: its doubtful shard (bad, so not counted) and then k 'ok' ones verified.
+        assert stats["verified_shards"] == 4 * len(victims)
+        for _, _, p, bad in victims:
+            assert p.read_bytes() != bad  # rewritten in place, under the same name
+        await assert_intact(pool, 6)
+        await assert_files(pool, files)
+
+
 # ---------------------------------------------------------------- away within grace
 
 FAST = {"store_io": {"probe_interval": 0.05, "probe_deadline": 0.5, "deadline": 2, "good_probes_to_return": 2},
@@ -386,7 +420,11 @@ async def test_rate_limit_charges_every_regenerated_byte(store_dirs, pool_config
         victims = shard_files([paths[4]])
         for p in victims:
             p.unlink()
+        # As a read or scrub that met them would: rows marked, stripes queued.
         sid = slot_at(pool, paths[4]).store_id
+        await pool.db(pool.catalog.set_shard_states, [(rec.ino, rec.idx, rec.version, s.shard, None, "missing")
+                                                      for _, rec in await all_stripes(pool)
+                                                      for s in rec.shards if s.store_id == sid])
         await pool.db(pool.catalog.queue_store_stripes, sid, "test")
         rep = Repairer(pool, cfg)
         stats = await rep.run_until_empty()
@@ -537,15 +575,18 @@ async def test_regenerated_shard_of_an_overwritten_stripe_becomes_garbage(store_
         other = rec.shards[1].store_id
         before = await pool.db(pool.catalog.counts)
         # As if the stripe had been overwritten while repair worked on version - 1.
-        applied = await pool.db(pool.catalog.record_repair, ino, 0, rec.version - 1, fid, [(0, other, None)])
-        assert applied == 0
+        await pool.db(pool.catalog.queue_repair, [(ino, 0, "test")])
+        applied = await pool.db(pool.catalog.record_repairs, [(ino, 0, rec.version - 1, fid, [(0, other, None)], True)])
+        assert applied == [0]
+        assert await pool.db(pool.catalog.repair_queue_length) == 1  # not dequeued: look again
         assert (await pool.db(pool.catalog.stripe, ino, 0)) == rec
         garbage = await pool.db(pool.catalog.garbage)
         assert (await pool.db(pool.catalog.counts))["garbage"] == before["garbage"] + 1
         assert [(g.store_id, g.version, g.shard) for g in garbage][-1] == (other, rec.version - 1, 0)
         # The current version applies, and the replaced copy is listed for deletion.
         old = rec.shards[0].store_id
-        assert await pool.db(pool.catalog.record_repair, ino, 0, rec.version, fid, [(0, other, old)]) == 1
+        assert await pool.db(pool.catalog.record_repairs, [(ino, 0, rec.version, fid, [(0, other, old)], True)]) == [1]
+        assert await pool.db(pool.catalog.repair_queue_length) == 0
         now = await pool.db(pool.catalog.stripe, ino, 0)
         assert now.shards[0].store_id == other and now.shards[0].state == "ok"
         assert [(g.store_id, g.version, g.shard) for g in await pool.db(pool.catalog.garbage)][-1] == (old, rec.version, 0)

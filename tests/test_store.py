@@ -113,6 +113,25 @@ class TestConformance:
         assert (s.puts, s.gets, s.bytes_written, s.bytes_read) == (1, 1, 17, 17)
         assert s.write_latency.count == 1 and s.read_latency.count == 1
 
+    async def test_batches_report_each_shard_in_place(self, any_store):
+        # get_many_checked / put_many: one call, one result per shard, in order.
+        names = [shard(i) for i in range(4)]
+        errors = await any_store.put_many([(n, [b"shard-", str(i).encode()]) for i, n in enumerate(names[:3])])
+        assert errors == [None, None, None]
+        (any_store.path / names[2].relpath()).write_bytes(b"BAD")  # damaged behind the store's back
+
+        def check(pos, blob):
+            if blob == b"BAD":
+                raise ShardCorrupt("bad checksum")
+            return (pos, blob)
+
+        got = await any_store.get_many_checked(names, check=check)
+        assert got[:2] == [(0, b"shard-0"), (1, b"shard-1")]
+        assert isinstance(got[2], ShardCorrupt) and isinstance(got[3], ShardMissing)
+        s = any_store.statistics()
+        assert (s.puts, s.gets, s.bytes_written, s.get_missing) == (3, 3, 21, 1)  # gets: reads that returned bytes
+        assert s.write_latency.count == 3 and s.read_latency.count == 3
+
     async def test_put_replaces(self, any_store):
         await any_store.put(shard(), [b"old"])
         await any_store.put(shard(), [b"new content"])
@@ -444,6 +463,16 @@ async def test_full_store_fails_only_its_own_shards(small_fs, tmp_path):
     assert full.statistics().put_errors == 1
     await full.put(shard(5), [b"small"])  # the space of the failed write came back
     assert await full.get(shard(5)) == b"small"
+
+
+async def test_put_many_on_a_full_store_fails_the_shards_that_do_not_fit(small_fs):
+    s = new_store(small_fs)
+    big = os.urandom(700 * 1024)
+    errors = await s.put_many([(shard(0), [big]), (shard(1), [big]), (shard(2), [b"small"])])
+    assert errors[0] is None and isinstance(errors[1], StoreFull) and errors[2] is None
+    assert await s.get(shard(0)) == big and await s.get(shard(2)) == b"small"
+    assert not await s.exists(shard(1)) and temp_files(small_fs) == []
+    assert s.statistics().put_errors == 1
 
 
 async def test_read_only_store(small_fs):

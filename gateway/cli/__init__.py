@@ -9,6 +9,7 @@ import importlib
 import logging
 import sys
 
+from .. import allocator
 from ..errors import ConfigError, ShoalError
 
 # Modules that add sub-commands, in the order `shoal --help` lists them.
@@ -59,6 +60,7 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "func", None):
         parser.print_help(sys.stderr)
         return EXIT_CONFIG
+    allocator.tune()  # shard-sized buffers from the heap, not fresh mmaps (gateway.allocator)
     try:
         try:
             return int(args.func(args) or 0)

@@ -86,11 +86,11 @@ def _settled(st: dict) -> bool:
 
 def _poll_repair(cfg, show: RepairProgress) -> dict:
     while True:
-        st = control_client.request(cfg, "repair", kick=False)
+        # The daemon answers as soon as repair settles, or after POLL_SECONDS.
+        st = control_client.request(cfg, "repair", kick=False, wait=POLL_SECONDS)
         show(st)
         if _settled(st):
             return st
-        time.sleep(POLL_SECONDS)
 
 
 # ---------------------------------------------------------------- repair
