@@ -915,20 +915,29 @@ class Catalog:
     def repair_view(self, keys: Sequence[tuple[int, int]]) -> dict[tuple[int, int], tuple[str, StripeRecord]]:
         """For repair, read in one snapshot: the file id and current record of
         each (ino, idx) that still exists."""
-        out: dict[tuple[int, int], tuple[str, StripeRecord]] = {}
+        if not keys:
+            return {}
+        want = "WITH want(ino, idx) AS (VALUES " + ",".join("(?,?)" for _ in keys) + ") "
+        args = [v for key in keys for v in key]
         self.db.execute("BEGIN")
         try:
-            for ino, idx in keys:
-                row = self.db.execute("SELECT file_id FROM inodes WHERE ino=?", (ino,)).fetchone()
-                rec = self.stripe(ino, idx) if row is not None and row[0] is not None else None
-                if rec is not None:
-                    out[(ino, idx)] = (row[0], rec)
+            stripes = self.db.execute(
+                want + "SELECT s.ino, s.idx, s.version, s.length, s.coded_length, s.k, s.n, i.file_id FROM want w "
+                "JOIN stripes s ON s.ino=w.ino AND s.idx=w.idx JOIN inodes i ON i.ino=s.ino "
+                "WHERE i.file_id IS NOT NULL", args).fetchall()
+            shards: dict[tuple[int, int], list[ShardLoc]] = {}
+            for ino, idx, shard, store_id, state in self.db.execute(
+                    want + "SELECT h.ino, h.idx, h.shard, h.store_id, h.state FROM want w "
+                    "JOIN shards h ON h.ino=w.ino AND h.idx=w.idx ORDER BY h.ino, h.idx, h.shard", args):
+                shards.setdefault((ino, idx), []).append(ShardLoc(shard=shard, store_id=store_id, state=state))
         finally:
             self.db.execute("COMMIT")
-        return out
+        return {(ino, idx): (fid, StripeRecord(ino=ino, idx=idx, version=v, length=length, coded_length=coded, k=k, n=n,
+                                               shards=tuple(shards.get((ino, idx), ()))))
+                for ino, idx, v, length, coded, k, n, fid in stripes}
 
     def record_repairs(self, items: Sequence[tuple[int, int, int, str, Sequence[tuple[int, str, str | None]], bool]],
-                       intents: Iterable[tuple[str, int, int]] = ()) -> list[int]:
+                       intents: Iterable[tuple[str, int, int]] = ()) -> tuple[list[int], int]:
         """Record what repair did to several stripes, in one transaction.
 
         Each item is (ino, idx, version, file_id, moves, dequeue). moves point
@@ -938,9 +947,10 @@ class Catalog:
         shard of a version replaced meanwhile goes to the garbage list
         instead. With dequeue, the stripe leaves the repair queue if every
         move applied. The given write intents are dropped. Returns the number
-        of moves applied per item."""
+        of moves applied per item, and how many stripes left the queue."""
         t = time.time()
         applied_per_item = []
+        dequeued = 0
         with self._tx() as db:
             for ino, idx, version, file_id, moves, dequeue in items:
                 applied = 0
@@ -956,10 +966,10 @@ class Catalog:
                         db.execute("INSERT INTO garbage(store_id, file_id, idx, version, shard, since) VALUES(?,?,?,?,?,?)",
                                    (dead, file_id, idx, version, shard, t))
                 if dequeue and applied == len(moves):
-                    db.execute("DELETE FROM repair_queue WHERE ino=? AND idx=?", (ino, idx))
+                    dequeued += db.execute("DELETE FROM repair_queue WHERE ino=? AND idx=?", (ino, idx)).rowcount
                 applied_per_item.append(applied)
             db.executemany("DELETE FROM intents WHERE file_id=? AND idx=? AND version=?", list(intents))
-        return applied_per_item
+        return applied_per_item, dequeued
 
     def stripe_page(self, after: tuple[int, int], limit: int) -> list[tuple[FileId | None, StripeRecord]]:
         """Up to `limit` current stripes after (ino, idx), in (ino, idx) order,

@@ -1,13 +1,24 @@
 """Codec: stripe bytes <-> shards, the shard file header, checksums. Pure.
 
-Coding is zfec's systematic Reed-Solomon code over GF(2^8): a stripe is
-zero-padded to k * shard_length bytes and cut into k data shards; zfec
-computes the n - k parity shards; any k of the n rebuild the stripe.
+Coding is a systematic Reed-Solomon code over GF(2^8) (polynomial 0x11d):
+a stripe is zero-padded to k * shard_length bytes and cut into k data
+shards; shard i holds, byte by byte, P(x_i) for the one polynomial P of
+degree < k that takes the data bytes at x_0..x_{k-1}, with evaluation
+points x_0 = 0 and x_i = a^(i-1) (a = the field's generator x). Any k of
+the n shards rebuild the stripe. This is the code zfec computes, and the
+first shards Shoal wrote were zfec's.
 
-Thread safety: encode and decode may be called from many threads at once.
-The cached zfec Encoder/Decoder objects hold only the coding matrix, built
-once in their constructor and read-only afterwards (zfec keeps per-call
-scratch on the C stack), and zfec releases the GIL while it computes.
+Any shard is a linear combination of any k others, with Lagrange
+coefficients of the points (``_matrix``, cached). The combining is done by
+gateway._gf (C; byte shuffles with SSSE3 or AVX2), which computes only the
+shards asked for; without that extension the codec falls back to zfec for
+the same bytes (tests/test_codec.py checks both, and both against the
+polynomial definition).
+
+Thread safety: encode, rebuild and decode may be called from many threads
+at once. The coefficient cache and zfec's cached Encoder/Decoder objects
+are read-only once built (zfec keeps per-call scratch on the C stack), and
+both gateway._gf and zfec release the GIL while they compute.
 
 Shard file format, version 1 (all of it is written by ``pack``)::
 
@@ -33,6 +44,11 @@ import msgpack
 import zfec
 
 from .errors import ShardCorrupt
+
+try:
+    from . import _gf
+except ImportError:  # installed without the C extension: zfec does the coding
+    _gf = None
 from .ids import FileId, PoolId
 
 __all__ = [
@@ -98,6 +114,63 @@ def _decoder(k: int, n: int) -> zfec.Decoder:
     return zfec.Decoder(k, n)
 
 
+# GF(2^8) with x^8 + x^4 + x^3 + x^2 + 1 (0x11d), generator x: log tables.
+_EXP = [0] * 510
+_LOG = [0] * 256
+_v = 1
+for _i in range(255):
+    _EXP[_i], _LOG[_v] = _v, _i
+    _v = (_v << 1) ^ (0x11D if _v & 0x80 else 0)
+for _i in range(255, 510):
+    _EXP[_i] = _EXP[_i - 255]
+del _i, _v
+
+
+def _point(i: int) -> int:
+    """The evaluation point of shard i: 0 for shard 0, a^(i-1) after it."""
+    return 0 if i == 0 else _EXP[i - 1]
+
+
+def _gf_mul(a: int, b: int) -> int:
+    return 0 if a == 0 or b == 0 else _EXP[_LOG[a] + _LOG[b]]
+
+
+def _gf_div(a: int, b: int) -> int:
+    return 0 if a == 0 else _EXP[_LOG[a] - _LOG[b] + 255]
+
+
+@functools.lru_cache(maxsize=4096)
+def _matrix(known: tuple[int, ...], wanted: tuple[int, ...]) -> bytes:
+    """Coefficients, row by row, of each wanted shard as a combination of
+    the known shards: shard w = sum_j L_j(x_w) * shard known[j], where L_j
+    is the Lagrange basis polynomial of the known points (subtraction is
+    XOR in GF(2^8))."""
+    xs = [_point(i) for i in known]
+    out = bytearray()
+    for w in wanted:
+        xw = _point(w)
+        for j, xj in enumerate(xs):
+            c = 1
+            for m, xm in enumerate(xs):
+                if m != j:
+                    c = _gf_mul(c, _gf_div(xw ^ xm, xj ^ xm))
+            out.append(c)
+    return bytes(out)
+
+
+def _combine(known: dict[int, memoryview], wanted: list[int]) -> list[bytes]:
+    """The payloads of the wanted shards from exactly k known ones (gateway._gf)."""
+    order = tuple(sorted(known))
+    return _gf.combine([known[i] for i in order], _matrix(order, tuple(wanted)))
+
+
+def _pick(views: Mapping[int, memoryview], k: int, n: int) -> dict[int, memoryview]:
+    """k of the given shards, data shards first, then the lowest parity indices."""
+    present = [i for i in range(k) if i in views]
+    present += [i for i in range(k, n) if i in views][: k - len(present)]
+    return {i: views[i] for i in present}
+
+
 def _bytes_view(data: Buffer) -> memoryview:
     mv = memoryview(data)
     if mv.ndim != 1 or mv.itemsize != 1 or mv.format not in ("B", "b", "c"):
@@ -133,9 +206,15 @@ def encode(data: Buffer, k: int, n: int) -> list[Buffer]:
         else:
             shards.append(bytes(size))
     if n > k:
-        # Ask zfec for the parity blocks only; it computes nothing else.
-        shards.extend(_encoder(k, n).encode(shards, list(range(k, n))))
+        shards.extend(_parity(shards, k, n))
     return shards
+
+
+def _parity(data: list, k: int, n: int) -> list[Buffer]:
+    """Parity payloads k..n-1 of k data payloads."""
+    if _gf is not None:
+        return _combine({i: _bytes_view(d) for i, d in enumerate(data)}, list(range(k, n)))
+    return _encoder(k, n).encode(list(data), list(range(k, n)))  # zfec computes the parity blocks only
 
 
 def encode_pieces(pieces: Sequence[Buffer], k: int, n: int) -> list[Buffer]:
@@ -148,7 +227,7 @@ def encode_pieces(pieces: Sequence[Buffer], k: int, n: int) -> list[Buffer]:
         raise ValueError(f"encode_pieces needs k={k} non-empty pieces of one length")
     shards: list[Buffer] = list(views)
     if n > k:
-        shards.extend(_encoder(k, n).encode(list(views), list(range(k, n))))
+        shards.extend(_parity(views, k, n))
     return shards
 
 
@@ -156,10 +235,9 @@ def rebuild(shards: Mapping[int, Buffer], k: int, n: int, wanted: Iterable[int])
     """The payloads of the ``wanted`` shard indices, from at least k verified
     payloads of one stripe (``shards``: index -> payload, all one length).
 
-    Only what is wanted is computed: a wanted data shard that is missing
-    costs one zfec decode (which computes the missing data shards only); a
-    wanted parity shard costs one encode of that parity shard alone, from
-    the data shards. Given shards that are wanted come back as they are.
+    Only what is wanted is computed: each missing wanted shard is one
+    combination of k given shards (data shards first). Given shards that
+    are wanted come back as they are.
     The payloads are assumed verified, as for decode.
 
     Raises ValueError on a bad index or length, or fewer than k shards.
@@ -177,19 +255,22 @@ def rebuild(shards: Mapping[int, Buffer], k: int, n: int, wanted: Iterable[int])
         raise ValueError(f"{len(views)} shards cannot rebuild a stripe that needs k={k}")
     if len({len(v) for v in views.values()}) != 1 or not len(next(iter(views.values()))):
         raise ValueError("shards of one stripe must have one non-zero length")
+    out: dict[int, Buffer] = {i: views[i] for i in wanted if i in views}
+    missing = [i for i in wanted if i not in views]
+    if not missing:
+        return out
+    if _gf is not None:
+        out.update(zip(missing, _combine(_pick(views, k, n), missing)))
+        return out
     data: list[Buffer]
     if all(i in views for i in range(k)):
         data = [views[i] for i in range(k)]
-    elif all(i in views for i in wanted):
-        data = []
     else:
-        present = [i for i in range(k) if i in views]
-        present += [i for i in range(k, n) if i in views][: k - len(present)]
+        present = list(_pick(views, k, n))
         # zfec reorders the lists it is given in place, so they are fresh here.
         data = _decoder(k, n).decode([views[i] for i in present], list(present))
-    out: dict[int, Buffer] = {i: views[i] for i in wanted if i in views}
-    out.update((i, data[i]) for i in wanted if i < k and i not in out)
-    parity = [i for i in wanted if i >= k and i not in out]
+    out.update((i, data[i]) for i in missing if i < k)
+    parity = [i for i in missing if i >= k]
     if parity:
         out.update(zip(parity, _encoder(k, n).encode(list(data), parity)))
     return out
@@ -226,10 +307,13 @@ def decode(shards: Mapping[int, Buffer], k: int, n: int, stripe_length: int) -> 
     else:
         if len(views) < k:
             raise ValueError(f"{len(views)} shards cannot rebuild a stripe that needs k={k}")
-        present = [i for i in range(k) if i in views]
-        present += [i for i in range(k, n) if i in views][: k - len(present)]
-        # zfec reorders the lists it is given in place, so they are fresh here.
-        data = _decoder(k, n).decode([views[i] for i in present], list(present))[:needed]
+        if _gf is not None:
+            found = rebuild(views, k, n, range(needed))
+            data = [found[i] for i in range(needed)]
+        else:
+            present = list(_pick(views, k, n))
+            # zfec reorders the lists it is given in place, so they are fresh here.
+            data = _decoder(k, n).decode([views[i] for i in present], list(present))[:needed]
     tail = stripe_length - (needed - 1) * size
     if tail != size:
         data[-1] = memoryview(data[-1])[:tail]

@@ -577,7 +577,7 @@ async def test_regenerated_shard_of_an_overwritten_stripe_becomes_garbage(store_
         # As if the stripe had been overwritten while repair worked on version - 1.
         await pool.db(pool.catalog.queue_repair, [(ino, 0, "test")])
         applied = await pool.db(pool.catalog.record_repairs, [(ino, 0, rec.version - 1, fid, [(0, other, None)], True)])
-        assert applied == [0]
+        assert applied == ([0], 0)
         assert await pool.db(pool.catalog.repair_queue_length) == 1  # not dequeued: look again
         assert (await pool.db(pool.catalog.stripe, ino, 0)) == rec
         garbage = await pool.db(pool.catalog.garbage)
@@ -585,7 +585,7 @@ async def test_regenerated_shard_of_an_overwritten_stripe_becomes_garbage(store_
         assert [(g.store_id, g.version, g.shard) for g in garbage][-1] == (other, rec.version - 1, 0)
         # The current version applies, and the replaced copy is listed for deletion.
         old = rec.shards[0].store_id
-        assert await pool.db(pool.catalog.record_repairs, [(ino, 0, rec.version, fid, [(0, other, old)], True)]) == [1]
+        assert await pool.db(pool.catalog.record_repairs, [(ino, 0, rec.version, fid, [(0, other, old)], True)]) == ([1], 1)
         assert await pool.db(pool.catalog.repair_queue_length) == 0
         now = await pool.db(pool.catalog.stripe, ino, 0)
         assert now.shards[0].store_id == other and now.shards[0].state == "ok"
