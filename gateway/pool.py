@@ -28,6 +28,7 @@ import collections
 import dataclasses
 import functools
 import logging
+import math
 import stat
 import time
 from contextlib import asynccontextmanager
@@ -55,6 +56,7 @@ VERSION_BLOCK = 1024  # stripe versions reserved per durable catalog write
 GC_INTERVAL = 2.0
 GC_BATCH = 128  # shard deletions per worker-thread call
 PREFETCH_STRIPES = 2  # a sequential reader keeps this many stripes coming ahead of it
+PRESSURE_WINDOW = 0.5  # seconds background work keeps off the budget after a user write was short of room
 
 
 def pad(data: bytes, length: int) -> bytes:
@@ -65,23 +67,39 @@ def pad(data: bytes, length: int) -> bytes:
 
 
 class ByteBudget:
-    """Bytes of buffered plus in-flight data, capped pool-wide."""
+    """Bytes of buffered plus in-flight data, capped pool-wide.
+
+    User writes take what fits (wait_fit); background work (repair) takes
+    room only below its own limit and only while no user write has been
+    short of room for PRESSURE_WINDOW seconds (wait_room), so it uses memory
+    users leave idle and gives way as soon as they need it."""
 
     def __init__(self, cap: int):
         self.cap, self.used, self.peak = cap, 0, 0
         self._lot = trio.lowlevel.ParkingLot()
+        self._pressed = -math.inf  # trio time a user write last found no room
 
     def fits(self, n: int) -> bool:
         return self.used + n <= self.cap or self.used == 0
 
+    def note_pressure(self) -> None:
+        """A user write is short of room (it waits, or pushes stripes out)."""
+        self._pressed = trio.current_time()
+
+    def pressed(self) -> bool:
+        return trio.current_time() - self._pressed < PRESSURE_WINDOW
+
     async def wait_fit(self, n: int) -> None:
         while not self.fits(n):
+            self.note_pressure()
             await self._lot.park()
 
     async def wait_room(self, n: int, limit: int) -> None:
-        """Wait until n more bytes keep the budget within limit (or it is idle)."""
-        while self.used and self.used + n > limit:
-            await self._lot.park()
+        """For background work: wait until n more bytes keep the budget
+        within limit and users are not short of room (or the budget is idle)."""
+        while self.used and (self.used + n > limit or self.pressed()):
+            with trio.move_on_after(PRESSURE_WINDOW / 4):
+                await self._lot.park()
 
     def take(self, n: int) -> None:
         self.used += n
@@ -613,6 +631,7 @@ class Pool:
     async def _new_dirty(self, of: OpenFile, idx: int) -> DirtyStripe:
         S = self.stripe_size
         while not self.budget.fits(S):
+            self.budget.note_pressure()
             victim = self._oldest_dirty()
             if victim is not None:
                 vof, vds = victim

@@ -215,6 +215,28 @@ async def test_shard_a_read_found_corrupt_is_rewritten_from_k_others(store_dirs,
         await assert_files(pool, files)
 
 
+async def test_repair_memory_gives_way_to_writers(autojump_clock):
+    # ByteBudget.wait_room, which repair waits in before reading a group:
+    # it takes idle memory up to its limit, but not while a writer has been
+    # short of room within the last PRESSURE_WINDOW seconds.
+    from gateway.pool import PRESSURE_WINDOW, ByteBudget
+
+    budget = ByteBudget(100)
+    await budget.wait_room(90, 75)  # idle budget: even an oversized group starts
+    budget.take(40)
+    with trio.move_on_after(1) as scope:
+        await budget.wait_room(40, 75)  # 80 > 75: waits
+    assert scope.cancelled_caught
+    await budget.wait_room(30, 75)  # 70 <= 75: goes
+    budget.note_pressure()  # a writer found no room
+    start = trio.current_time()
+    async with trio.open_nursery() as nursery:
+        nursery.start_soon(budget.wait_room, 1, 75)
+    assert trio.current_time() - start >= PRESSURE_WINDOW
+    budget.give(40)
+    await budget.wait_room(1, 75)  # idle again
+
+
 # ---------------------------------------------------------------- away within grace
 
 FAST = {"store_io": {"probe_interval": 0.05, "probe_deadline": 0.5, "deadline": 2, "good_probes_to_return": 2},
