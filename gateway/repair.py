@@ -345,8 +345,8 @@ class Repairer:
     async def repair_pass(self, progress: Progress | None = None) -> bool:
         """One pass over the queue, lowest margin first, in groups of up to
         ``group_size()`` stripes taken in queue order, through four stages
-        (look up, read, build, write). True if it changed anything (a shard written
-        or a stripe dequeued)."""
+        (look up, read, build, write). True if it changed anything (a shard
+        written or a stripe dequeued)."""
         pool = self.pool
         async with self._lock:
             now = time.time()
@@ -460,7 +460,10 @@ class Repairer:
 
     async def wait_settled(self, timeout: float) -> None:
         """Wait until settled() or timeout seconds, for `shoal repair --wait`
-        through the daemon: it sees the end as soon as it happens."""
+        through the daemon: it sees the end as soon as it happens. The queue
+        is counted afresh first, so stripes queued a moment ago (a store
+        replaced, say) are not missed before the worker's next look."""
+        self.queue_stripes = await self.pool.db(self.pool.catalog.repair_queue_length)
         with trio.move_on_after(timeout):
             while not self.settled() or self._lock.locked():
                 await self._progress_event.wait()

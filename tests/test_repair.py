@@ -215,6 +215,23 @@ async def test_shard_a_read_found_corrupt_is_rewritten_from_k_others(store_dirs,
         await assert_files(pool, files)
 
 
+async def test_wait_settled_counts_the_queue_afresh(store_dirs, pool_config):
+    # `shoal repair --wait` through the daemon asks wait_settled: stripes
+    # queued behind the worker's back (a store replaced a moment ago) must
+    # not read as "settled" before the worker has looked.
+    cfg = await init(pool_config(4, 6, stripe_size=STRIPE, extra=QUIET))
+    async with open_pool(cfg) as pool:
+        ino = next(iter(await write_files(pool, 1, seed=23)))
+        rep = Repairer(pool, cfg)
+        assert rep.settled()
+        await pool.db(pool.catalog.queue_repair, [(ino, 0, "test")])
+        await rep.wait_settled(0.2)
+        assert rep.queue_stripes == 1 and not rep.settled()
+        await rep.run_until_empty()
+        await rep.wait_settled(5)
+        assert rep.settled() and rep.queue_stripes == 0
+
+
 async def test_repair_memory_gives_way_to_writers(autojump_clock):
     # ByteBudget.wait_room, which repair waits in before reading a group:
     # it takes idle memory up to its limit, but not while a writer has been
