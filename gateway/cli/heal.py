@@ -70,8 +70,10 @@ class RepairProgress:
         self.bar.show(done / self.top if self.top else 1.0, text)
 
 
-def _repair_summary(st: dict) -> str:
+def _repair_summary(st: dict, *, daemon: bool = False) -> str:
     line = f"repair: {st['repaired_shards']} shards ({size(st['repaired_bytes'])}) rebuilt"
+    if daemon:  # the daemon's counts run from its start, not from this command
+        line += " since the daemon started"
     left = st.get("queue_stripes", 0)
     if not left:
         return line + "; the queue is empty"
@@ -123,6 +125,7 @@ def cmd_repair(args) -> int:
     show = RepairProgress(bar)
     try:
         st = control_client.try_request(cfg, "repair", kick=True)
+        by_daemon = st is not None
         if st is not None:
             if args.wait:
                 st = _poll_repair(cfg, show)
@@ -135,7 +138,7 @@ def cmd_repair(args) -> int:
             st = _run(offline_repair, cfg, show if args.wait else None)
     finally:
         bar.close()
-    print(_repair_summary(st))
+    print(_repair_summary(st, daemon=by_daemon))
     return 0
 
 
@@ -203,12 +206,12 @@ async def offline_store(cfg, op: str, path: str, domain: str | None, wait: bool,
     return change.as_dict()
 
 
-def _print_change(res: dict) -> None:
+def _print_change(res: dict, *, daemon: bool = False) -> None:
     for w in res.get("warnings") or ():
         print(f"warning: {w}", file=sys.stderr)
     print(res["message"])
     if res.get("repair"):
-        print(_repair_summary(res["repair"]))
+        print(_repair_summary(res["repair"], daemon=daemon))
 
 
 def _finish_retire(cfg, path: str, first: dict) -> dict:
@@ -247,6 +250,7 @@ def cmd_store(args) -> int:
         if same_fs:
             kw["allow_same_filesystem"] = True
         res = control_client.try_request(cfg, args.op, **kw)
+        by_daemon = res is not None
         if res is not None:
             if wait and args.op != "store_add":
                 res["repair"] = _poll_repair(cfg, show)
@@ -256,7 +260,10 @@ def cmd_store(args) -> int:
             res = _run(offline_store, cfg, args.op, path, domain, wait, show if wait else None, same_fs)
     finally:
         bar.close()
-    _print_change(res)
+    _print_change(res, daemon=by_daemon)
     if args.op != "store_add" and not wait and res.get("action") in ("replaced", "failed", "retiring"):
-        print("repair does the rest: mount the pool, or run `shoal repair --wait " + args.config + "`")
+        if by_daemon:
+            print("the running daemon repairs in the background: `shoal repair --wait " + args.config + "` follows it")
+        else:
+            print("repair does the rest: mount the pool, or run `shoal repair --wait " + args.config + "`")
     return 0
