@@ -392,22 +392,22 @@ class Repairer:
                             failed(group, e)
                         await send.send(group)
 
-            async def reader(recv: trio.MemoryReceiveChannel, send: trio.MemorySendChannel) -> None:
+            async def stage(work, recv: trio.MemoryReceiveChannel, send: trio.MemorySendChannel) -> None:
                 async with recv, send:
                     async for group in recv:
                         try:
-                            await self._read(group, records)
+                            await work(group)
                         except (ShoalError, OSError) as e:
                             failed(group, e)
                         await send.send(group)
 
-            async def coder(recv: trio.MemoryReceiveChannel, send: trio.MemorySendChannel) -> None:
-                async with recv, send:
-                    async for group in recv:
-                        await self._regenerate_group(group.work)
-                        # The shards read are dropped; the built ones are held.
-                        self._charge(group, sum(_nbytes(f) for job in group.work for f in job.files.values()))
-                        await send.send(group)
+            async def read(group: _Group) -> None:
+                await self._read(group, records)
+
+            async def build(group: _Group) -> None:
+                await self._regenerate_group(group.work)
+                # The shards read are dropped; the built ones are held.
+                self._charge(group, sum(_nbytes(f) for job in group.work for f in job.files.values()))
 
             async def writer(recv: trio.MemoryReceiveChannel) -> None:
                 nonlocal progressed, stop
@@ -440,8 +440,8 @@ class Repairer:
             try:
                 async with trio.open_nursery() as nursery:
                     nursery.start_soon(looker, found_send)
-                    nursery.start_soon(reader, found_recv, read_send)
-                    nursery.start_soon(coder, read_recv, built_send)
+                    nursery.start_soon(stage, read, found_recv, read_send)
+                    nursery.start_soon(stage, build, read_recv, built_send)
                     nursery.start_soon(writer, built_recv)
             finally:
                 for group in inflight:  # cancelled midway: their stripes stay queued
