@@ -667,9 +667,15 @@ class Repairer:
             elif i in job.bad and slot.readable:
                 job.todo[i] = ("here", sid) if slot.writable else ("move", sid)
             else:
+                # Its store failed the read (or stopped serving): the shard
+                # keeps its place. One in doubt is looked at again later; one
+                # the catalog trusts stays trusted, as if it had not been read
+                # (the health monitor deals with the store).
                 job.good.pop(i, None)
                 job.stays[i] = sid
-                job.retry_at = min(job.retry_at, now + self.scan_interval)
+                job.absent = True  # short of k without it, the stripe waits rather than counts as lost
+                if job.locs[i].state != "ok":
+                    job.retry_at = min(job.retry_at, now + self.scan_interval)
         waiting = job.waiting
         if not job.todo:
             return Outcome("waiting", retry_at=waiting) if waiting else Outcome("done")

@@ -215,6 +215,74 @@ async def test_shard_a_read_found_corrupt_is_rewritten_from_k_others(store_dirs,
         await assert_files(pool, files)
 
 
+@requires_root
+async def test_rebuild_goes_on_when_a_source_store_stalls(store_dirs, pool_config):
+    # A store that hangs on reads (FaultyStore: every get stalls past the
+    # deadline) costs repair one deadline per wave it was asked in; the
+    # stripes are rebuilt from the other shards, and every file stays exact.
+    from faults import FaultPlan, FaultyStore
+
+    paths = store_dirs(6)
+    extra = {**QUIET, "store_io": {"deadline": 0.5}}
+    cfg = await init(pool_config(4, 6, stores=paths, stripe_size=STRIPE, extra=extra))
+    async with open_pool(cfg) as pool:
+        files = await write_files(pool, 4, seed=31)
+        held = await pool.db(pool.catalog.store_shard_count, slot_at(pool, paths[3]).store_id)
+    unmount_all(paths[3])
+    mount_tmpfs(paths[3], "64m")
+    async with open_pool(cfg) as pool:
+        await replace_store(pool, paths[3])
+        hung = slot_at(pool, paths[0])
+        faulty = hung.store = FaultyStore(hung.store, FaultPlan.from_spec([("get", None, "stall")]))
+        try:
+            stats = await Repairer(pool, cfg).run_until_empty()
+            assert stats["repaired_shards"] == held and stats["queue_stripes"] == 0
+            assert hung.store.statistics().stalls >= 1  # it was asked, and it hung
+        finally:
+            faulty.release()
+            hung.store = faulty.store
+        await assert_intact(pool, 6)
+        await assert_files(pool, files)
+
+
+@requires_root
+async def test_stripes_behind_stalled_stores_wait_and_are_never_called_lost(store_dirs, pool_config):
+    # Three of six stores hang on reads while a fourth is rebuilt: fewer
+    # than k shards answer, but those stores hold the shards, so the stripes
+    # wait (still queued) instead of being written off as lost; once the
+    # stores answer again the rebuild completes.
+    from faults import FaultPlan, FaultyStore
+
+    paths = store_dirs(6)
+    extra = {**QUIET, "store_io": {"deadline": 0.3}}
+    cfg = await init(pool_config(4, 6, stores=paths, stripe_size=STRIPE, extra=extra))
+    async with open_pool(cfg) as pool:
+        files = await write_files(pool, 3, seed=32)
+        held = await pool.db(pool.catalog.store_shard_count, slot_at(pool, paths[3]).store_id)
+    unmount_all(paths[3])
+    mount_tmpfs(paths[3], "64m")
+    async with open_pool(cfg) as pool:
+        await replace_store(pool, paths[3])
+        hung = [slot_at(pool, p) for p in paths[:3]]
+        wrapped = []
+        for slot in hung:
+            slot.store = FaultyStore(slot.store, FaultPlan.from_spec([("get", None, "stall")]))
+            wrapped.append(slot.store)
+        rep = Repairer(pool, cfg)
+        try:
+            stats = await rep.run_until_empty()
+        finally:
+            for slot, faulty in zip(hung, wrapped):
+                faulty.release()
+                slot.store = faulty.store
+        assert stats["stripes_lost"] == 0 and stats["queue_stripes"] > 0
+        stats = await rep.run_until_empty()  # the stores answer again
+        assert stats["queue_stripes"] == 0 and stats["stripes_lost"] == 0
+        assert stats["repaired_shards"] == held
+        await assert_intact(pool, 6)
+        await assert_files(pool, files)
+
+
 async def test_wait_settled_counts_the_queue_afresh(store_dirs, pool_config):
     # `shoal repair --wait` through the daemon asks wait_settled: stripes
     # queued behind the worker's back (a store replaced a moment ago) must
