@@ -1049,6 +1049,12 @@ class Catalog:
     def store_shard_count(self, store_id: str) -> int:
         return self.db.execute("SELECT COUNT(*) FROM shards WHERE store_id=?", (store_id,)).fetchone()[0]
 
+    def store_payload_bytes(self, store_id: str) -> int:
+        """Payload bytes of the current shards on store_id (headers not counted)."""
+        return self.db.execute(
+            "SELECT COALESCE(SUM((s.coded_length + s.k - 1) / s.k), 0) FROM shards h "
+            "JOIN stripes s ON s.ino=h.ino AND s.idx=h.idx WHERE h.store_id=?", (store_id,)).fetchone()[0]
+
     def checkpoint(self) -> None:
         self.db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
 

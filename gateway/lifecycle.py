@@ -339,8 +339,9 @@ async def replace_store(target: Pool | PoolConfig, path: str | os.PathLike, *, r
 async def retire_store(target: Pool | PoolConfig, path: str | os.PathLike, *, repairer: Repairer | None = None,
                        wait: bool = False, progress: Progress | None = None) -> StoreChange:
     """Drain the store at PATH and retire it. Refuses when the other active
-    stores cannot hold n shards per stripe under the spread rule. Calling it
-    again on a retiring store continues the drain."""
+    stores cannot hold n shards per stripe under the spread rule, or have
+    less free space than the shards to move. Calling it again on a retiring
+    store continues the drain."""
     async with _pool_of(target) as pool:
         p = await _resolved(path)
         records = await pool.db(pool.catalog.stores)
@@ -351,7 +352,6 @@ async def retire_store(target: Pool | PoolConfig, path: str | os.PathLike, *, re
             raise StoreRefused(f"store {p} is already retired: remove its [[store]] table from {pool.cfg.source}")
         if rec.admin == "failed":
             raise StoreRefused(f"store {p} is failed: its shards are being rebuilt elsewhere; `shoal store replace` puts a new disk there")
-        warnings = []
         slot = pool.slots.get(rec.store_id)
         if rec.admin == "active":
             left = _active_domains(pool, records, rec.store_id)
@@ -362,12 +362,12 @@ async def retire_store(target: Pool | PoolConfig, path: str | os.PathLike, *, re
                     f"retiring {p} would leave {sum(left.values())} active stores in {len(left)} domains, which cannot "
                     f"hold n = {pool.n} shards per stripe with at most {cap} per domain ({short or pool.n - sum(left.values())} short): "
                     "add a store first (`shoal store add`), or put a new disk in its place (`shoal store replace`)")
-            if slot is not None:
-                used = max(0, slot.total_bytes - slot.free_bytes)
-                room = sum(s.free_bytes for s in pool.slots.values() if s.writable and s is not slot)
-                if used > room:
-                    warnings.append(f"{p} uses {used} bytes but the other writable stores have {room} free: "
-                                    "the drain may stop short")
+            need = await pool.db(pool.catalog.store_payload_bytes, rec.store_id)
+            room = sum(s.free_bytes for s in pool.slots.values() if s.writable and s.store_id != rec.store_id)
+            if need > room:
+                raise StoreRefused(
+                    f"retiring {p} would move {need / 2**20:.1f} MiB of shards, but the other writable stores have "
+                    f"{room / 2**20:.1f} MiB free: add a store first (`shoal store add`), or free space on them")
             await pool.db(pool.catalog.update_store, rec.store_id, admin="retiring")
             if slot is not None:
                 slot.admin = "retiring"
@@ -384,7 +384,7 @@ async def retire_store(target: Pool | PoolConfig, path: str | os.PathLike, *, re
             done = True
         return StoreChange(
             action="retired" if done else "retiring", store_id=rec.store_id, path=str(p), domain=rec.domain,
-            queued_stripes=queued, repair=stats, warnings=tuple(warnings),
+            queued_stripes=queued, repair=stats,
             message=(f"store {p} is drained and retired: remove its [[store]] table from {pool.cfg.source}" if done else
                      f"store {p} is retiring: {left_shards} shards to move off it; it is retired when none is left"))
 

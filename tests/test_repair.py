@@ -465,6 +465,13 @@ async def test_retired_store_drains_and_nothing_is_lost(store_dirs, pool_config)
     async with open_pool(cfg) as pool:
         files = await write_files(pool, 8, seed=6)
         held = await pool.db(pool.catalog.store_shard_count, slot_at(pool, paths[0]).store_id)
+    async with open_pool(cfg) as pool:  # the others are (as if) full: refused, and nothing changes
+        for s in pool.slots.values():
+            if s.path != str(paths[0]):
+                s.free_bytes = 1024
+        with pytest.raises(StoreRefused, match=r"would move .* MiB of shards, but the other writable stores"):
+            await retire_store(pool, paths[0])
+        assert slot_at(pool, paths[0]).admin == "active" and await pool.db(pool.catalog.repair_queue_length) == 0
     change = await retire_store(cfg, paths[0], wait=True)
     assert change.action == "retired" and change.repair["repaired_shards"] == held
     with pytest.raises(StoreRefused, match="cannot hold n = 6"):
