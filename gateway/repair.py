@@ -17,10 +17,12 @@ only shards on stores that serve now), the worker:
    read or scrub found bad, one whose write was never confirmed, one a
    returning or replacement store should hold), and 'ok' ones, data shards
    first, until k are verified; the rest are trusted as their rows say
-   (scrub reads them all).
+   (scrub reads them all). A trusted shard whose store fails the read stays
+   trusted; a stripe that cannot find k shards while such a store may answer
+   again waits, and is never called lost for it.
 2. from k verified shards, builds only the shards it will write, in a
-   worker thread (codec.rebuild: a missing data shard costs one decode, a
-   parity shard one encode of that shard alone). The code is deterministic,
+   worker thread (codec.rebuild: each is one GF(2^8) combination of the k
+   shards, computed alone). The code is deterministic,
    so a regenerated shard is byte-for-byte the shard that was lost, under
    the same name.
 3. writes each regenerated shard: back onto its own store when that store
@@ -37,7 +39,7 @@ only shards on stores that serve now), the worker:
 
 Stripes are repaired in groups (``GROUP``), so that a group's reads take
 one worker-thread call per store, its regeneration one per code thread,
-its writes one per store and its result one catalog transaction: thread
+its writes one or two per store and its result one catalog transaction: thread
 round trips, not coding, were what limited the rebuild rate
 (docs/performance.md). Groups pass four stages, one group in each at a
 time: while one group's shards are written, the next is built, the one
