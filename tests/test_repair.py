@@ -3,6 +3,7 @@ real catalog: files go in through the pool API and come back bit-exact."""
 from __future__ import annotations
 
 import collections
+import contextlib
 import json
 import os
 import random
@@ -215,32 +216,49 @@ async def test_shard_a_read_found_corrupt_is_rewritten_from_k_others(store_dirs,
         await assert_files(pool, files)
 
 
+async def wiped_store_pool(store_dirs, pool_config, *, deadline: float, files: int, seed: int):
+    """A six-store pool with files written and store 3's disk swapped for an
+    empty one: (cfg, paths, files, shards store 3 held)."""
+    paths = store_dirs(6)
+    extra = {**QUIET, "store_io": {"deadline": deadline}}
+    cfg = await init(pool_config(4, 6, stores=paths, stripe_size=STRIPE, extra=extra))
+    async with open_pool(cfg) as pool:
+        written = await write_files(pool, files, seed=seed)
+        held = await pool.db(pool.catalog.store_shard_count, slot_at(pool, paths[3]).store_id)
+    unmount_all(paths[3])
+    mount_tmpfs(paths[3], "64m")
+    return cfg, paths, written, held
+
+
+@contextlib.contextmanager
+def stalled_reads(pool, paths):
+    """Every get on the stores at paths stalls past its deadline (FaultyStore)
+    until the block ends; the real stores are put back then."""
+    from faults import FaultPlan, FaultyStore
+
+    slots = [slot_at(pool, p) for p in paths]
+    for slot in slots:
+        slot.store = FaultyStore(slot.store, FaultPlan.from_spec([("get", None, "stall")]))
+    try:
+        yield slots
+    finally:
+        for slot in slots:
+            slot.store.release()
+            slot.store = slot.store.store
+
+
 @requires_root
 async def test_rebuild_goes_on_when_a_source_store_stalls(store_dirs, pool_config):
     # A store that hangs on reads (FaultyStore: every get stalls past the
     # deadline) costs repair one deadline per wave it was asked in; the
     # stripes are rebuilt from the other shards, and every file stays exact.
-    from faults import FaultPlan, FaultyStore
-
-    paths = store_dirs(6)
-    extra = {**QUIET, "store_io": {"deadline": 0.5}}
-    cfg = await init(pool_config(4, 6, stores=paths, stripe_size=STRIPE, extra=extra))
-    async with open_pool(cfg) as pool:
-        files = await write_files(pool, 4, seed=31)
-        held = await pool.db(pool.catalog.store_shard_count, slot_at(pool, paths[3]).store_id)
-    unmount_all(paths[3])
-    mount_tmpfs(paths[3], "64m")
+    cfg, paths, files, held = await wiped_store_pool(store_dirs, pool_config, deadline=0.5, files=4, seed=31)
     async with open_pool(cfg) as pool:
         await replace_store(pool, paths[3])
-        hung = slot_at(pool, paths[0])
-        faulty = hung.store = FaultyStore(hung.store, FaultPlan.from_spec([("get", None, "stall")]))
-        try:
+        with stalled_reads(pool, paths[:1]) as (hung,):
             stats = await Repairer(pool, cfg).run_until_empty()
             assert stats["repaired_shards"] == held and stats["queue_stripes"] == 0
             assert hung.store.statistics().stalls >= 1  # it was asked, and it hung
-        finally:
-            faulty.release()
-            hung.store = faulty.store
         await assert_intact(pool, 6)
         await assert_files(pool, files)
 
@@ -251,30 +269,12 @@ async def test_stripes_behind_stalled_stores_wait_and_are_never_called_lost(stor
     # than k shards answer, but those stores hold the shards, so the stripes
     # wait (still queued) instead of being written off as lost; once the
     # stores answer again the rebuild completes.
-    from faults import FaultPlan, FaultyStore
-
-    paths = store_dirs(6)
-    extra = {**QUIET, "store_io": {"deadline": 0.3}}
-    cfg = await init(pool_config(4, 6, stores=paths, stripe_size=STRIPE, extra=extra))
-    async with open_pool(cfg) as pool:
-        files = await write_files(pool, 3, seed=32)
-        held = await pool.db(pool.catalog.store_shard_count, slot_at(pool, paths[3]).store_id)
-    unmount_all(paths[3])
-    mount_tmpfs(paths[3], "64m")
+    cfg, paths, files, held = await wiped_store_pool(store_dirs, pool_config, deadline=0.3, files=3, seed=32)
     async with open_pool(cfg) as pool:
         await replace_store(pool, paths[3])
-        hung = [slot_at(pool, p) for p in paths[:3]]
-        wrapped = []
-        for slot in hung:
-            slot.store = FaultyStore(slot.store, FaultPlan.from_spec([("get", None, "stall")]))
-            wrapped.append(slot.store)
         rep = Repairer(pool, cfg)
-        try:
+        with stalled_reads(pool, paths[:3]):
             stats = await rep.run_until_empty()
-        finally:
-            for slot, faulty in zip(hung, wrapped):
-                faulty.release()
-                slot.store = faulty.store
         assert stats["stripes_lost"] == 0 and stats["queue_stripes"] > 0
         stats = await rep.run_until_empty()  # the stores answer again
         assert stats["queue_stripes"] == 0 and stats["stripes_lost"] == 0
